@@ -1,0 +1,239 @@
+package online
+
+import "math"
+
+// This file holds the running estimators of prequential (test-then-train)
+// evaluation: a compensated sum for long-running totals, the fading-factor
+// mean and the sliding-window mean of J. Gama, R. Sebastião and P. P.
+// Rodrigues, "On evaluating stream learning algorithms", Machine Learning
+// 90(3), 2013. None of them reads a clock: they advance once per loss added.
+
+// Neumaier is a compensated running sum (Neumaier's variant of Kahan
+// summation, A. Neumaier, ZAMM 54, 1974). Each addition of x does
+//
+//	t = s + x
+//	c += (s − t) + x   if |s| ≥ |x|
+//	c += (x − t) + s   otherwise
+//	s = t
+//
+// and the sum is s + c. The error of the result stays near one rounding of
+// the true sum however many terms are added, where plain summation loses about
+// one rounding per term. Only additions and subtractions are used, so the
+// compiler has no multiply to fuse into the compensation. The zero value is an
+// empty sum.
+type Neumaier struct {
+	// S is the running sum and C the running compensation; exported so that
+	// the pair can be stored and restored exactly.
+	S float64 `json:"s"`
+	C float64 `json:"c"`
+}
+
+// Add adds x to the sum.
+func (k *Neumaier) Add(x float64) {
+	t := k.S + x
+	if math.Abs(k.S) >= math.Abs(x) {
+		k.C += (k.S - t) + x
+	} else {
+		k.C += (x - t) + k.S
+	}
+	k.S = t
+}
+
+// Value returns the compensated sum s + c.
+func (k Neumaier) Value() float64 { return k.S + k.C }
+
+// Fading is the fading-factor prequential mean of Gama, Sebastião and
+// Rodrigues (2013), section 4.2:
+//
+//	S_t = L_t + α S_{t−1},   N_t = 1 + α N_{t−1},   P_t = S_t / N_t
+//
+// with S_0 = N_0 = 0. Each loss added is one step t: the estimate decays once
+// per event, never with time. The effective window is about 1/(1 − α) events.
+// The zero value has α = 0 (P_t = L_t); use NewFading.
+type Fading struct {
+	alpha float64
+	s, n  float64
+}
+
+// NewFading returns an empty fading mean with factor alpha, which must be in
+// (0, 1]; alpha = 1 gives the plain running mean. NewFading panics on any
+// other alpha (a programmer error; Monitor validates its options first).
+func NewFading(alpha float64) Fading {
+	if !(alpha > 0 && alpha <= 1) {
+		panic("online: fading factor outside (0, 1]")
+	}
+	return Fading{alpha: alpha}
+}
+
+// Add takes one step with loss l.
+func (f *Fading) Add(l float64) {
+	f.s = l + f.alpha*f.s
+	f.n = 1 + f.alpha*f.n
+}
+
+// Mean returns P_t, or 0 before the first loss.
+func (f *Fading) Mean() float64 {
+	if f.n == 0 {
+		return 0
+	}
+	return f.s / f.n
+}
+
+// Alpha returns the fading factor α.
+func (f *Fading) Alpha() float64 { return f.alpha }
+
+// Weight returns N_t, the total weight of the losses seen (it tends to
+// 1/(1 − α)).
+func (f *Fading) Weight() float64 { return f.n }
+
+// Window is the sliding-window prequential mean of Gama, Sebastião and
+// Rodrigues (2013), section 4.1: the mean of the last w losses,
+//
+//	P_t = (1/min(t, w)) Σ_{i=max(1, t−w+1)}^{t} L_i
+//
+// kept in a ring buffer. The window total is a compensated sum (Neumaier)
+// that adds each new loss and subtracts the one leaving; in addition it is
+// recomputed exactly from the buffer once every w additions, so round-off can
+// never build up however long the stream (the recomputation costs O(w) every
+// w steps, O(1) amortised). Add does not allocate.
+type Window struct {
+	buf   []float64
+	head  int // index of the oldest loss once the buffer is full
+	n     int // number of losses held, ≤ len(buf)
+	sum   Neumaier
+	since int // additions since the last exact recomputation
+}
+
+// NewWindow returns an empty window of size w ≥ 1. It panics if w < 1 (a
+// programmer error; Monitor validates its options first).
+func NewWindow(w int) *Window {
+	if w < 1 {
+		panic("online: window size below 1")
+	}
+	return &Window{buf: make([]float64, w)}
+}
+
+// Add appends loss l, evicting the oldest loss when the window is full.
+func (w *Window) Add(l float64) {
+	if w.n < len(w.buf) {
+		w.buf[w.n] = l
+		w.n++
+		w.sum.Add(l)
+	} else {
+		old := w.buf[w.head]
+		w.buf[w.head] = l
+		w.head++
+		if w.head == len(w.buf) {
+			w.head = 0
+		}
+		w.sum.Add(l)
+		w.sum.Add(-old)
+	}
+	w.since++
+	if w.since >= len(w.buf) {
+		w.recompute()
+	}
+}
+
+// recompute replaces the running total by a fresh compensated sum of the
+// buffer.
+func (w *Window) recompute() {
+	var s Neumaier
+	for i := 0; i < w.n; i++ {
+		s.Add(w.buf[i])
+	}
+	w.sum = s
+	w.since = 0
+}
+
+// Mean returns the mean of the losses held, or 0 when the window is empty.
+func (w *Window) Mean() float64 {
+	if w.n == 0 {
+		return 0
+	}
+	return w.sum.Value() / float64(w.n)
+}
+
+// Sum returns the total of the losses held.
+func (w *Window) Sum() float64 { return w.sum.Value() }
+
+// Len returns the number of losses held, at most Cap.
+func (w *Window) Len() int { return w.n }
+
+// Cap returns the window size w.
+func (w *Window) Cap() int { return len(w.buf) }
+
+// valuesTo appends the losses held to dst, oldest first.
+func (w *Window) valuesTo(dst []float64) []float64 {
+	if w.n < len(w.buf) {
+		return append(dst, w.buf[:w.n]...)
+	}
+	dst = append(dst, w.buf[w.head:]...)
+	return append(dst, w.buf[:w.head]...)
+}
+
+// windowState is the stored form of a Window: the buffer in storage order
+// with the index of its oldest loss, the running total and the phase of the
+// exact recomputation, so that a restored window gives bit-identical means.
+type windowState struct {
+	Size   int       `json:"size"`
+	Head   int       `json:"head"`
+	Values []float64 `json:"values"`
+	Sum    Neumaier  `json:"sum"`
+	Since  int       `json:"since"`
+}
+
+func (w *Window) state() windowState {
+	return windowState{Size: len(w.buf), Head: w.head, Values: append([]float64(nil), w.buf[:w.n]...),
+		Sum: w.sum, Since: w.since}
+}
+
+// setState restores w from st, which the caller has checked (see
+// checkWindowState). When st was written with another window size, the newest
+// losses that fit are kept and the total is recomputed.
+func (w *Window) setState(st windowState) {
+	if st.Size == len(w.buf) {
+		w.n = copy(w.buf, st.Values)
+		w.head = st.Head
+		w.sum = st.Sum
+		w.since = st.Since
+		return
+	}
+	// Put the stored losses in age order, then keep the newest that fit.
+	old := Window{buf: st.Values, head: st.Head, n: len(st.Values)}
+	if len(st.Values) < st.Size {
+		old.head = 0
+	}
+	vals := old.valuesTo(nil)
+	if len(vals) > len(w.buf) {
+		vals = vals[len(vals)-len(w.buf):]
+	}
+	w.head = 0
+	w.n = copy(w.buf, vals)
+	clear(w.buf[w.n:])
+	w.recompute()
+}
+
+// checkWindowState reports what is wrong with st, or "" when it is usable.
+func checkWindowState(st windowState) string {
+	switch {
+	case st.Size < 1:
+		return "size must be at least 1"
+	case len(st.Values) > st.Size:
+		return "holds more values than its size"
+	case st.Head < 0 || st.Head >= st.Size || (st.Head != 0 && len(st.Values) < st.Size):
+		return "head out of range"
+	case st.Since < 0 || st.Since >= st.Size:
+		return "since out of range"
+	}
+	return ""
+}
+
+// fadingState is the stored form of a Fading.
+type fadingState struct {
+	S float64 `json:"s"`
+	N float64 `json:"n"`
+}
+
+func (f *Fading) state() fadingState      { return fadingState{S: f.s, N: f.n} }
+func (f *Fading) setState(st fadingState) { f.s, f.n = st.S, st.N }
