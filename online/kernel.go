@@ -1,0 +1,107 @@
+package online
+
+// The inner loops of a step. Each has a reference variant (a plain loop, the
+// definition) and a fast variant selected at build time: kernel_simd.go (AVX2
+// with FMA, GOEXPERIMENT=simd on amd64) or kernel_generic.go (the unrolled
+// portable loops below). Fast and reference results agree to rounding: the
+// fast variants sum in a different order and may fuse multiply-adds.
+
+// dotRef returns Σ_f a[f]·b[f]. len(b) must be at least len(a).
+func dotRef(a, b []float32) float32 {
+	b = b[:len(a)]
+	var s float32
+	for f, x := range a {
+		s += x * b[f]
+	}
+	return s
+}
+
+// updateRef applies the fused two-vector SGD update in place, both sides
+// reading the pre-step values:
+//
+//	p[f], q[f] ← a1·p[f] + b1·q[f],  a2·q[f] + b2·p[f]
+//
+// With a1 = 1 − γ_u·λ, b1 = γ_u·e, a2 = 1 − γ_i·λ, b2 = γ_i·e this is the
+// regularized step p ← p + γ_u(e·q − λ·p), q ← q + γ_i(e·p − λ·q) of Koren,
+// Bell & Volinsky (2009). It returns Σ (p'−p') + (q'−q'), which is 0 when
+// every new value is finite and NaN otherwise: the finiteness check costs
+// one subtraction and one addition per value.
+func updateRef(p, q []float32, a1, b1, a2, b2 float32) float32 {
+	q = q[:len(p)]
+	var chk float32
+	for f, x := range p {
+		y := q[f]
+		np := a1*x + b1*y
+		nq := a2*y + b2*x
+		p[f], q[f] = np, nq
+		chk += (np - np) + (nq - nq)
+	}
+	return chk
+}
+
+// dotUnrolled is dotRef with four independent accumulators, so the adds
+// of consecutive elements do not wait on each other.
+func dotUnrolled(a, b []float32) float32 {
+	b = b[:len(a)]
+	var s0, s1, s2, s3 float32
+	f := 0
+	for ; f+4 <= len(a); f += 4 {
+		aa := a[f : f+4 : f+4]
+		bb := b[f : f+4 : f+4]
+		s0 += aa[0] * bb[0]
+		s1 += aa[1] * bb[1]
+		s2 += aa[2] * bb[2]
+		s3 += aa[3] * bb[3]
+	}
+	for ; f < len(a); f++ {
+		s0 += a[f] * b[f]
+	}
+	return (s0 + s1) + (s2 + s3)
+}
+
+// updateUnrolled is updateRef unrolled by four.
+func updateUnrolled(p, q []float32, a1, b1, a2, b2 float32) float32 {
+	q = q[:len(p)]
+	var c0, c1 float32
+	f := 0
+	for ; f+4 <= len(p); f += 4 {
+		pp := p[f : f+4 : f+4]
+		qq := q[f : f+4 : f+4]
+		x0, x1, x2, x3 := pp[0], pp[1], pp[2], pp[3]
+		y0, y1, y2, y3 := qq[0], qq[1], qq[2], qq[3]
+		n0, n1, n2, n3 := a1*x0+b1*y0, a1*x1+b1*y1, a1*x2+b1*y2, a1*x3+b1*y3
+		m0, m1, m2, m3 := a2*y0+b2*x0, a2*y1+b2*x1, a2*y2+b2*x2, a2*y3+b2*x3
+		pp[0], pp[1], pp[2], pp[3] = n0, n1, n2, n3
+		qq[0], qq[1], qq[2], qq[3] = m0, m1, m2, m3
+		c0 += (n0 - n0) + (n1 - n1) + (m0 - m0) + (m1 - m1)
+		c1 += (n2 - n2) + (n3 - n3) + (m2 - m2) + (m3 - m3)
+	}
+	for ; f < len(p); f++ {
+		x, y := p[f], q[f]
+		n, m := a1*x+b1*y, a2*y+b2*x
+		p[f], q[f] = n, m
+		c0 += (n - n) + (m - m)
+	}
+	return c0 + c1
+}
+
+// finiteCheck returns 0 when every value of v is finite and NaN otherwise.
+func finiteCheck(v []float32) float32 {
+	var c float32
+	for _, x := range v {
+		c += x - x
+	}
+	return c
+}
+
+// kernels is a pair of inner loops; the Model holds the one it uses so
+// benchmarks can compare the reference loops with the fast ones.
+type kernels struct {
+	dot    func(a, b []float32) float32
+	update func(p, q []float32, a1, b1, a2, b2 float32) float32
+}
+
+var (
+	refKernels  = kernels{dot: dotRef, update: updateRef}
+	fastKernels = kernels{dot: dotFast, update: updateFast}
+)
