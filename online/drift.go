@@ -343,6 +343,13 @@ func checkADWINState(st adwinState) string {
 			}
 		}
 	}
+	var width float64
+	for i, l := range st.Levels {
+		width += float64(len(l)) * float64(int64(1)<<i)
+	}
+	if !(st.Total >= -1e-9 && st.Total <= width*(1+1e-12)) {
+		return "total out of range"
+	}
 	if st.Clock < 0 || st.Clock >= adwinClock {
 		return "clock out of range"
 	}

@@ -176,7 +176,7 @@ type Monitor struct {
 	coldUser, coldItem, coldEither uint64
 	sqTotal, absTotal              Neumaier
 	sqFade, absFade, warmSqFade    Fading
-	sqWin, absWin                  *Window
+	errWin                         *Window // signed errors e
 
 	evals, hits uint64
 	hitFade     Fading
@@ -201,8 +201,7 @@ func NewMonitor(o MonitorOptions) (*Monitor, error) {
 		sqFade:     NewFading(o.Alpha),
 		absFade:    NewFading(o.Alpha),
 		warmSqFade: NewFading(o.Alpha),
-		sqWin:      NewWindow(o.Window),
-		absWin:     NewWindow(o.Window),
+		errWin:     NewWindow(o.Window),
 		hitFade:    NewFading(o.Alpha),
 		hitWin:     NewWindow(o.Window),
 		ph:         NewPageHinkley(o.Delta, o.Lambda, o.MinSamples),
@@ -274,8 +273,7 @@ func (m *Monitor) record(e float64, coldUser, coldItem bool) bool {
 	m.absTotal.Add(ae)
 	m.sqFade.Add(sq)
 	m.absFade.Add(ae)
-	m.sqWin.Add(sq)
-	m.absWin.Add(ae)
+	m.errWin.Add(e)
 	return true
 }
 
@@ -380,9 +378,9 @@ func (m *Monitor) Status() MonitorStatus {
 		RMSEFading:        math.Sqrt(m.sqFade.Mean()),
 		MAEFading:         m.absFade.Mean(),
 		WarmRMSEFading:    math.Sqrt(m.warmSqFade.Mean()),
-		RMSEWindow:        math.Sqrt(max(m.sqWin.Mean(), 0)),
-		MAEWindow:         m.absWin.Mean(),
-		WindowEvents:      m.sqWin.Len(),
+		RMSEWindow:        math.Sqrt(m.errWin.MeanSquare()),
+		MAEWindow:         m.errWin.MeanAbs(),
+		WindowEvents:      m.errWin.Len(),
 		SquaredErrorTotal: m.sqTotal.Value(),
 		AbsErrorTotal:     m.absTotal.Value(),
 		RecallN:           m.o.TopN,
@@ -427,8 +425,7 @@ type monitorState struct {
 	SqFade      fadingState `json:"sq_fading"`
 	AbsFade     fadingState `json:"abs_fading"`
 	WarmSqFade  fadingState `json:"warm_sq_fading"`
-	SqWin       windowState `json:"sq_window"`
-	AbsWin      windowState `json:"abs_window"`
+	ErrWin      windowState `json:"error_window"`
 	Evals       uint64      `json:"evaluations"`
 	Hits        uint64      `json:"hits"`
 	HitFade     fadingState `json:"hit_fading"`
@@ -442,7 +439,8 @@ type monitorState struct {
 
 // MarshalState encodes the monitor's full state as JSON (float64 values are
 // written in Go's shortest round-trip form, so a restore is exact). The
-// sliding windows are included: about 3·w numbers.
+// sliding windows are included: about 11 bytes per value held (error and
+// recall windows, each up to w values).
 func (m *Monitor) MarshalState() ([]byte, error) {
 	st := monitorState{
 		Format: monitorStateFormat, Mode: m.o.Mode.String(),
@@ -450,8 +448,8 @@ func (m *Monitor) MarshalState() ([]byte, error) {
 		ColdUser: m.coldUser, ColdItem: m.coldItem, ColdEither: m.coldEither,
 		SqTotal: m.sqTotal, AbsTotal: m.absTotal,
 		SqFade: m.sqFade.state(), AbsFade: m.absFade.state(), WarmSqFade: m.warmSqFade.state(),
-		SqWin: m.sqWin.state(), AbsWin: m.absWin.state(),
-		Evals: m.evals, Hits: m.hits, HitFade: m.hitFade.state(), HitWin: m.hitWin.state(),
+		ErrWin: m.errWin.state(),
+		Evals:  m.evals, Hits: m.hits, HitFade: m.hitFade.state(), HitWin: m.hitWin.state(),
 		PH:       m.ph.state(),
 		PHAlarms: m.phAlarms, ADWINAlarms: m.adwinAlarms, LastAlarm: m.lastAlarm,
 	}
@@ -486,7 +484,7 @@ func (m *Monitor) UnmarshalState(b []byte) error {
 	for _, w := range []struct {
 		name string
 		st   windowState
-	}{{"sq_window", st.SqWin}, {"abs_window", st.AbsWin}, {"hit_window", st.HitWin}} {
+	}{{"error_window", st.ErrWin}, {"hit_window", st.HitWin}} {
 		if r := checkWindowState(w.st); r != "" {
 			return bad(w.name, r)
 		}
@@ -520,8 +518,7 @@ func (m *Monitor) UnmarshalState(b []byte) error {
 	m.sqFade.setState(st.SqFade)
 	m.absFade.setState(st.AbsFade)
 	m.warmSqFade.setState(st.WarmSqFade)
-	m.sqWin.setState(st.SqWin)
-	m.absWin.setState(st.AbsWin)
+	m.errWin.setState(st.ErrWin)
 	m.evals, m.hits = st.Evals, st.Hits
 	m.hitFade.setState(st.HitFade)
 	m.hitWin.setState(st.HitWin)

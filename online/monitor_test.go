@@ -275,10 +275,10 @@ func TestMonitorStateAdapts(t *testing.T) {
 	if err := small.UnmarshalState(b); err != nil {
 		t.Fatal(err)
 	}
-	vals := a.sqWin.valuesTo(nil)
+	vals := a.errWin.valuesTo(nil)
 	var s float64
 	for _, v := range vals[len(vals)-10:] {
-		s += v
+		s += v * v
 	}
 	if got := small.Status().RMSEWindow; math.Abs(got-math.Sqrt(s/10)) > 1e-12 {
 		t.Errorf("shrunk window RMSE %v, want %v", got, math.Sqrt(s/10))
@@ -300,8 +300,8 @@ func TestMonitorStateAdapts(t *testing.T) {
 		}
 	}
 	bad := strings.Replace(string(b), `"since":`, `"since":-1,"ignored":`, 1)
-	if err := small.UnmarshalState([]byte(bad)); err == nil || !strings.Contains(err.Error(), "sq_window") {
-		t.Errorf("negative since: error %v, want one naming sq_window", err)
+	if err := small.UnmarshalState([]byte(bad)); err == nil || !strings.Contains(err.Error(), "error_window") {
+		t.Errorf("negative since: error %v, want one naming error_window", err)
 	}
 	if impl.Status() != before {
 		t.Error("a failed UnmarshalState changed the monitor")

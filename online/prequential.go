@@ -1,6 +1,9 @@
 package online
 
-import "math"
+import (
+	"encoding/binary"
+	"math"
+)
 
 // This file holds the running estimators of prequential (test-then-train)
 // evaluation: a compensated sum for long-running totals, the fading-factor
@@ -86,22 +89,26 @@ func (f *Fading) Alpha() float64 { return f.alpha }
 // 1/(1 − α)).
 func (f *Fading) Weight() float64 { return f.n }
 
-// Window is the sliding-window prequential mean of Gama, Sebastião and
-// Rodrigues (2013), section 4.1: the mean of the last w losses,
+// Window is the sliding-window prequential estimator of Gama, Sebastião and
+// Rodrigues (2013), section 4.1, over the last w values x_i (a signed error,
+// or a loss):
 //
-//	P_t = (1/min(t, w)) Σ_{i=max(1, t−w+1)}^{t} L_i
+//	Mean       = (1/n) Σ x_i
+//	MeanSquare = (1/n) Σ x_i²      (so RMSE = sqrt(MeanSquare) of errors)
+//	MeanAbs    = (1/n) Σ |x_i|     (MAE of errors)
 //
-// kept in a ring buffer. The window total is a compensated sum (Neumaier)
-// that adds each new loss and subtracts the one leaving; in addition it is
-// recomputed exactly from the buffer once every w additions, so round-off can
-// never build up however long the stream (the recomputation costs O(w) every
-// w steps, O(1) amortised). Add does not allocate.
+// over i = max(1, t−w+1) … t, n = min(t, w), the values kept in a ring
+// buffer. Each total is a compensated sum (Neumaier) that adds the new value
+// and subtracts the one leaving; in addition the totals are recomputed exactly
+// from the buffer once every w additions, so round-off can never build up
+// however long the stream (O(w) every w steps, O(1) amortised). Add does not
+// allocate.
 type Window struct {
-	buf   []float64
-	head  int // index of the oldest loss once the buffer is full
-	n     int // number of losses held, ≤ len(buf)
-	sum   Neumaier
-	since int // additions since the last exact recomputation
+	buf          []float64
+	head         int // index of the oldest value once the buffer is full
+	n            int // number of values held, ≤ len(buf)
+	sum, sq, abs Neumaier
+	since        int // additions since the last exact recomputation
 }
 
 // NewWindow returns an empty window of size w ≥ 1. It panics if w < 1 (a
@@ -113,57 +120,73 @@ func NewWindow(w int) *Window {
 	return &Window{buf: make([]float64, w)}
 }
 
-// Add appends loss l, evicting the oldest loss when the window is full.
-func (w *Window) Add(l float64) {
+// Add appends x, evicting the oldest value when the window is full. x must be
+// finite with a finite square.
+func (w *Window) Add(x float64) {
 	if w.n < len(w.buf) {
-		w.buf[w.n] = l
+		w.buf[w.n] = x
 		w.n++
-		w.sum.Add(l)
 	} else {
 		old := w.buf[w.head]
-		w.buf[w.head] = l
+		w.buf[w.head] = x
 		w.head++
 		if w.head == len(w.buf) {
 			w.head = 0
 		}
-		w.sum.Add(l)
 		w.sum.Add(-old)
+		w.sq.Add(-old * old)
+		w.abs.Add(-math.Abs(old))
 	}
+	w.sum.Add(x)
+	w.sq.Add(x * x)
+	w.abs.Add(math.Abs(x))
 	w.since++
 	if w.since >= len(w.buf) {
 		w.recompute()
 	}
 }
 
-// recompute replaces the running total by a fresh compensated sum of the
+// recompute replaces the running totals by fresh compensated sums of the
 // buffer.
 func (w *Window) recompute() {
-	var s Neumaier
-	for i := 0; i < w.n; i++ {
-		s.Add(w.buf[i])
+	var s, q, a Neumaier
+	for _, x := range w.buf[:w.n] {
+		s.Add(x)
+		q.Add(x * x)
+		a.Add(math.Abs(x))
 	}
-	w.sum = s
+	w.sum, w.sq, w.abs = s, q, a
 	w.since = 0
 }
 
-// Mean returns the mean of the losses held, or 0 when the window is empty.
-func (w *Window) Mean() float64 {
+// Mean returns the mean of the values held, or 0 when the window is empty.
+func (w *Window) Mean() float64 { return w.mean(w.sum) }
+
+// MeanSquare returns the mean of the squares of the values held (never
+// negative), or 0 when the window is empty.
+func (w *Window) MeanSquare() float64 { return max(w.mean(w.sq), 0) }
+
+// MeanAbs returns the mean of the absolute values held (never negative), or
+// 0 when the window is empty.
+func (w *Window) MeanAbs() float64 { return max(w.mean(w.abs), 0) }
+
+func (w *Window) mean(s Neumaier) float64 {
 	if w.n == 0 {
 		return 0
 	}
-	return w.sum.Value() / float64(w.n)
+	return s.Value() / float64(w.n)
 }
 
-// Sum returns the total of the losses held.
+// Sum returns the total of the values held.
 func (w *Window) Sum() float64 { return w.sum.Value() }
 
-// Len returns the number of losses held, at most Cap.
+// Len returns the number of values held, at most Cap.
 func (w *Window) Len() int { return w.n }
 
 // Cap returns the window size w.
 func (w *Window) Cap() int { return len(w.buf) }
 
-// valuesTo appends the losses held to dst, oldest first.
+// valuesTo appends the values held to dst, oldest first.
 func (w *Window) valuesTo(dst []float64) []float64 {
 	if w.n < len(w.buf) {
 		return append(dst, w.buf[:w.n]...)
@@ -173,38 +196,75 @@ func (w *Window) valuesTo(dst []float64) []float64 {
 }
 
 // windowState is the stored form of a Window: the buffer in storage order
-// with the index of its oldest loss, the running total and the phase of the
-// exact recomputation, so that a restored window gives bit-identical means.
+// (as little-endian float64 bits, which JSON carries as base64: exact and
+// about 11 bytes a value) with the index of its oldest value, the running
+// totals and the phase of the exact recomputation, so that a restored window
+// gives bit-identical results.
 type windowState struct {
-	Size   int       `json:"size"`
-	Head   int       `json:"head"`
-	Values []float64 `json:"values"`
-	Sum    Neumaier  `json:"sum"`
-	Since  int       `json:"since"`
+	Size   int      `json:"size"`
+	Head   int      `json:"head"`
+	Values []byte   `json:"values"`
+	Sum    Neumaier `json:"sum"`
+	Sq     Neumaier `json:"sq"`
+	Abs    Neumaier `json:"abs"`
+	Since  int      `json:"since"`
 }
 
 func (w *Window) state() windowState {
-	return windowState{Size: len(w.buf), Head: w.head, Values: append([]float64(nil), w.buf[:w.n]...),
-		Sum: w.sum, Since: w.since}
+	b := make([]byte, 0, 8*w.n)
+	for _, x := range w.buf[:w.n] {
+		b = binary.LittleEndian.AppendUint64(b, math.Float64bits(x))
+	}
+	return windowState{Size: len(w.buf), Head: w.head, Values: b,
+		Sum: w.sum, Sq: w.sq, Abs: w.abs, Since: w.since}
 }
 
-// setState restores w from st, which the caller has checked (see
-// checkWindowState). When st was written with another window size, the newest
-// losses that fit are kept and the total is recomputed.
+// checkWindowState reports what is wrong with st, or "" when it is usable.
+func checkWindowState(st windowState) string {
+	n := len(st.Values) / 8
+	switch {
+	case st.Size < 1 || st.Size > MaxMonitorWindow:
+		return "size out of range"
+	case len(st.Values)%8 != 0:
+		return "values length not a multiple of 8 bytes"
+	case n > st.Size:
+		return "holds more values than its size"
+	case st.Head < 0 || st.Head >= st.Size || (st.Head != 0 && n < st.Size):
+		return "head out of range"
+	case st.Since < 0 || st.Since >= st.Size:
+		return "since out of range"
+	}
+	for i := range n {
+		x := math.Float64frombits(binary.LittleEndian.Uint64(st.Values[8*i:]))
+		if math.IsNaN(x) || math.IsInf(x*x, 0) {
+			return "non-finite value"
+		}
+	}
+	return ""
+}
+
+// setState restores w from st, which checkWindowState accepted. When st was
+// written with another window size, the newest values that fit are kept and
+// the totals are recomputed.
 func (w *Window) setState(st windowState) {
+	vals := make([]float64, len(st.Values)/8)
+	for i := range vals {
+		vals[i] = math.Float64frombits(binary.LittleEndian.Uint64(st.Values[8*i:]))
+	}
 	if st.Size == len(w.buf) {
-		w.n = copy(w.buf, st.Values)
+		w.n = copy(w.buf, vals)
+		clear(w.buf[w.n:])
 		w.head = st.Head
-		w.sum = st.Sum
+		w.sum, w.sq, w.abs = st.Sum, st.Sq, st.Abs
 		w.since = st.Since
 		return
 	}
-	// Put the stored losses in age order, then keep the newest that fit.
-	old := Window{buf: st.Values, head: st.Head, n: len(st.Values)}
-	if len(st.Values) < st.Size {
+	// Put the stored values in age order, then keep the newest that fit.
+	old := Window{buf: vals, head: st.Head, n: len(vals)}
+	if len(vals) < st.Size {
 		old.head = 0
 	}
-	vals := old.valuesTo(nil)
+	vals = old.valuesTo(nil)
 	if len(vals) > len(w.buf) {
 		vals = vals[len(vals)-len(w.buf):]
 	}
@@ -212,21 +272,6 @@ func (w *Window) setState(st windowState) {
 	w.n = copy(w.buf, vals)
 	clear(w.buf[w.n:])
 	w.recompute()
-}
-
-// checkWindowState reports what is wrong with st, or "" when it is usable.
-func checkWindowState(st windowState) string {
-	switch {
-	case st.Size < 1:
-		return "size must be at least 1"
-	case len(st.Values) > st.Size:
-		return "holds more values than its size"
-	case st.Head < 0 || st.Head >= st.Size || (st.Head != 0 && len(st.Values) < st.Size):
-		return "head out of range"
-	case st.Since < 0 || st.Since >= st.Size:
-		return "since out of range"
-	}
-	return ""
 }
 
 // fadingState is the stored form of a Fading.

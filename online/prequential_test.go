@@ -80,36 +80,44 @@ func TestFadingCheckValues(t *testing.T) {
 }
 
 func TestWindowMatchesNaive(t *testing.T) {
-	// Losses of very different sizes stress the running total that adds the
-	// new loss and subtracts the evicted one.
+	// Signed values of very different sizes stress the running totals that
+	// add the new value and subtract the evicted one. Reference: naive
+	// compensated sums over the last w values of the kept history.
 	rng := rand.New(rand.NewPCG(3, 4))
 	for _, size := range []int{1, 7, 1000} {
 		w := NewWindow(size)
 		var hist []float64
 		for i := range 300_000 {
-			l := rng.Float64() * math.Pow(10, float64(rng.IntN(9)-4))
-			w.Add(l)
-			hist = append(hist, l)
+			x := (rng.Float64() - 0.3) * math.Pow(10, float64(rng.IntN(9)-4))
+			w.Add(x)
+			hist = append(hist, x)
 			if i%89 != 0 && i < 299_990 {
 				continue
 			}
 			lo := max(0, len(hist)-size)
-			var naive Neumaier
+			var s, q, a Neumaier
 			for _, x := range hist[lo:] {
-				naive.Add(x)
+				s.Add(x)
+				q.Add(x * x)
+				a.Add(math.Abs(x))
 			}
-			want := naive.Value() / float64(len(hist)-lo)
+			n := float64(len(hist) - lo)
 			if w.Len() != len(hist)-lo {
 				t.Fatalf("size %d step %d: Len %d, want %d", size, i, w.Len(), len(hist)-lo)
 			}
-			// The running total is off by at most a few roundings of the
-			// largest loss that passed through since the last exact
-			// recomputation (≤ 1e4 here), i.e. ≤ ~1e-11 absolute; relative
-			// to the window mean we allow 1e-9, and never more than 1e-9
-			// absolute.
-			if got := w.Mean(); math.Abs(got-want) > 1e-9*math.Max(want, 1) {
-				t.Fatalf("size %d step %d: window mean %.17g, naive %.17g", size, i, got, want)
+			// Each running total is off by at most a few roundings of the
+			// largest term that passed through since the last exact
+			// recomputation (|x| ≤ 1e4, x² ≤ 1e8), i.e. about 1e-12 resp.
+			// 1e-8 absolute, over at least one value. Tolerance: 1e-9
+			// relative to the mean of |x| (resp. x²), plus 1e-9 absolute.
+			check := func(what string, got, want, scale, tol float64) {
+				if math.Abs(got-want) > tol*(scale+1) {
+					t.Fatalf("size %d step %d: window %s %.17g, naive %.17g", size, i, what, got, want)
+				}
 			}
+			check("mean", w.Mean(), s.Value()/n, a.Value()/n, 1e-9)
+			check("mean abs", w.MeanAbs(), a.Value()/n, a.Value()/n, 1e-9)
+			check("mean square", w.MeanSquare(), q.Value()/n, q.Value()/n, 1e-9)
 		}
 	}
 }
