@@ -236,7 +236,7 @@ func (s *Scenario) plant() {
 			c[j] = rng.NormFloat64()
 			n2 += c[j] * c[j]
 		}
-		scale := math.Sqrt(0.8*float64(k)*s2/n2) // |c|² = 0.8·k·s² exactly
+		scale := math.Sqrt(0.8 * float64(k) * s2 / n2) // |c|² = 0.8·k·s² exactly
 		for j := range c {
 			c[j] *= scale
 		}
