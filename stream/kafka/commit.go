@@ -66,9 +66,9 @@ func lookupNext(ps []stream.PartitionOffset, p int32) (int64, bool) {
 type startKind uint8
 
 const (
-	startDelivered startKind = iota // the trainer's position, held without a break
-	startCommitted                  // the group's committed offset
-	startConfigured                 // Options.Start: nothing is known yet
+	startDelivered  startKind = iota // the trainer's position, held without a break
+	startCommitted                   // the group's committed offset
+	startConfigured                  // Options.Start: nothing is known yet
 )
 
 func (k startKind) String() string {

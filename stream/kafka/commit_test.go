@@ -79,7 +79,7 @@ func TestSetNextKeepsSorted(t *testing.T) {
 	}{{3, 30}, {0, 5}, {7, 70}, {3, 31}, {1, 10}, {0, 6}} {
 		ps = setNext(ps, u.p, u.next)
 	}
-	want := []stream.PartitionOffset{{0, 6}, {1, 10}, {3, 31}, {7, 70}}
+	want := []stream.PartitionOffset{{Partition: 0, Next: 6}, {Partition: 1, Next: 10}, {Partition: 3, Next: 31}, {Partition: 7, Next: 70}}
 	if len(ps) != len(want) {
 		t.Fatalf("got %v, want %v", ps, want)
 	}
@@ -101,12 +101,12 @@ func TestSetNextKeepsSorted(t *testing.T) {
 
 func TestChooseStart(t *testing.T) {
 	for _, c := range []struct {
-		name         string
-		delivered    int64
-		has, cont    bool
-		committed    int64
-		want         int64
-		wantKind     startKind
+		name      string
+		delivered int64
+		has, cont bool
+		committed int64
+		want      int64
+		wantKind  startKind
 	}{
 		{"checkpoint wins over commit", 500, true, true, 800, 500, startDelivered},
 		{"checkpoint ahead of commit", 900, true, true, 800, 900, startDelivered},
@@ -187,7 +187,7 @@ func TestNewRejectsForeignPosition(t *testing.T) {
 	}{
 		{stream.Position{Source: "file", Path: "x"}, "not kafka"},
 		{stream.Position{Source: "kafka", Topic: "other"}, "topic \"other\""},
-		{stream.Position{Source: "kafka", Topic: "ev", Partitions: []stream.PartitionOffset{{0, -3}}}, "partitions[0]"},
+		{stream.Position{Source: "kafka", Topic: "ev", Partitions: []stream.PartitionOffset{{Partition: 0, Next: -3}}}, "partitions[0]"},
 	} {
 		_, err := New(context.Background(), o, c.pos)
 		if err == nil || !strings.Contains(err.Error(), c.want) {
