@@ -5,7 +5,9 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"net"
 	"slices"
+	"strconv"
 	"sync"
 	"time"
 
@@ -200,31 +202,22 @@ func checkLease(ctx context.Context, client *kgo.Client, group string, wait time
 	deadline := time.Now().Add(wait)
 	warned := false
 	for {
-		resp, err := client.DescribeGroups(ctx, &kgo.DescribeGroupsRequest{GroupIDs: []string{group}})
-		if err != nil {
+		members, err := describeMembers(ctx, client, group)
+		switch {
+		case err != nil && coordinatorPending(err) && time.Now().Before(deadline):
+			// A new broker creates its offsets topic on the first lookup.
+		case err != nil:
 			return fmt.Errorf("kafka: describing group %q: %w", group, err)
-		}
-		var members []kgo.DescribeGroupsResponseMember
-		for _, g := range resp.Groups {
-			if g.GroupID == group {
-				if g.Error != nil {
-					return fmt.Errorf("kafka: describing group %q: %w", group, g.Error)
-				}
-				members = g.Members
-			}
-		}
-		if len(members) == 0 {
+		case len(members) == 0:
 			return nil
-		}
-		if time.Now().After(deadline) {
+		case time.Now().After(deadline):
 			hosts := make([]string, len(members))
 			for i, m := range members {
 				hosts[i] = m.ClientID + "@" + m.ClientHost
 			}
 			return fmt.Errorf("kafka: group %q already has %d active member(s) %v: another source is consuming for this model; stop it first, or use a new group ID",
 				group, len(members), hosts)
-		}
-		if !warned {
+		case !warned:
 			log.Info("group has members; waiting one session timeout for them to expire",
 				zap.String("group", group), zap.Int("members", len(members)))
 			warned = true
@@ -235,6 +228,35 @@ func checkLease(ctx context.Context, client *kgo.Client, group string, wait time
 		case <-time.After(500 * time.Millisecond):
 		}
 	}
+}
+
+// describeMembers asks the group's coordinator for the group's members.
+func describeMembers(ctx context.Context, client *kgo.Client, group string) ([]kgo.DescribeGroupsResponseMember, error) {
+	fc, err := client.FindCoordinator(ctx, &kgo.FindCoordinatorRequest{Key: group, KeyType: kgo.CoordinatorKeyTypeConsumer})
+	if err != nil {
+		return nil, err
+	}
+	if fc.Error != nil {
+		return nil, fc.Error
+	}
+	addr := kgo.TCP(net.JoinHostPort(fc.Coordinator.Host, strconv.Itoa(fc.Coordinator.Port)))
+	resp, err := client.DescribeGroups(ctx, &kgo.DescribeGroupsRequest{Addr: addr, GroupIDs: []string{group}})
+	if err != nil {
+		return nil, err
+	}
+	for _, g := range resp.Groups {
+		if g.GroupID == group {
+			return g.Members, g.Error
+		}
+	}
+	return nil, nil
+}
+
+// coordinatorPending reports whether err says the group coordinator is not
+// ready yet (it comes up with the offsets topic).
+func coordinatorPending(err error) bool {
+	return errors.Is(err, kgo.NotCoordinatorForGroup) || errors.Is(err, kgo.GroupCoordinatorNotAvailable) ||
+		errors.Is(err, kgo.GroupLoadInProgress)
 }
 
 // fail reports a fatal error to Next (the first one wins).
