@@ -140,12 +140,16 @@ func checkID(field string, id []byte) error {
 	if len(id) > MaxIDLen {
 		return badField(field, "longer than "+strconv.Itoa(MaxIDLen)+" bytes ("+strconv.Itoa(len(id))+")")
 	}
+	ascii := true
 	for _, c := range id {
 		if c < 0x20 || c == 0x7f {
 			return badField(field, "contains a control character")
 		}
+		if c >= utf8.RuneSelf {
+			ascii = false
+		}
 	}
-	if !utf8.Valid(id) {
+	if !ascii && !utf8.Valid(id) {
 		return badField(field, "not valid UTF-8")
 	}
 	return nil

@@ -365,3 +365,26 @@ func TestFileNextHonoursContext(t *testing.T) {
 		}
 	}
 }
+
+func TestFileFollowDetectsTruncation(t *testing.T) {
+	p := writeFile(t, "live.jsonl", `{"user":"a","item":"b","value":1}`+"\n"+`{"user":"c","item":"d","value":1}`+"\n")
+	s := open(t, FileOptions{Path: p, Follow: true, PollInterval: 5 * time.Millisecond}, Position{})
+	ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+	defer cancel()
+	if b, err := s.Next(ctx); err != nil || b.Len() != 2 {
+		t.Fatalf("Next = %v, %v", b, err)
+	}
+	if err := os.Truncate(p, 5); err != nil {
+		t.Fatal(err)
+	}
+	for {
+		_, err := s.Next(ctx)
+		if err == nil {
+			continue // empty batches until the reader looks again
+		}
+		if !strings.Contains(err.Error(), "shrank") {
+			t.Fatalf("Next after truncation: %v, want an error saying the file shrank", err)
+		}
+		break
+	}
+}
