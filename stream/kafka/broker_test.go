@@ -65,7 +65,7 @@ func testOptions(tb testing.TB, broker string, partitions int) Options {
 		MaxWait:         300 * time.Millisecond,
 		SessionTimeout:  2 * time.Second,
 		Partitions:      partitions,
-		NewDecoder:      func() stream.Decoder { return testDecoder{} },
+		NewDecoder:      jsonDecoder,
 		Logger:          log,
 	}
 }

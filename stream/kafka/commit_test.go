@@ -124,7 +124,7 @@ func TestChooseStart(t *testing.T) {
 }
 
 func TestOptionsValidation(t *testing.T) {
-	good := Options{Brokers: []string{"127.0.0.1:1"}, Topic: "ev", GroupID: "g", DeadLetterTopic: "ev-dl", Decoder: testDecoder{}}
+	good := Options{Brokers: []string{"127.0.0.1:1"}, Topic: "ev", GroupID: "g", DeadLetterTopic: "ev-dl", NewDecoder: jsonDecoder}
 	o, err := good.withDefaults()
 	if err != nil {
 		t.Fatal(err)
@@ -142,7 +142,7 @@ func TestOptionsValidation(t *testing.T) {
 		{"group id", func(o *Options) { o.GroupID = "" }},
 		{"dead-letter topic", func(o *Options) { o.DeadLetterTopic = "" }},
 		{"dead-letter topic", func(o *Options) { o.DeadLetterTopic = "ev" }},
-		{"decoder", func(o *Options) { o.Decoder = nil }},
+		{"decoder", func(o *Options) { o.Decoder, o.NewDecoder = nil, nil }},
 		{"max wait", func(o *Options) { o.MaxWait = 100 * time.Millisecond }},
 		{"max wait", func(o *Options) { o.MaxWait = 2 * time.Second }},
 		{"session timeout", func(o *Options) { o.SessionTimeout = 500 * time.Millisecond }},
@@ -180,7 +180,7 @@ func TestSASLMechanisms(t *testing.T) {
 // TestNewRejectsForeignPosition checks the position guard, which runs before
 // any connection is made.
 func TestNewRejectsForeignPosition(t *testing.T) {
-	o := Options{Brokers: []string{"127.0.0.1:1"}, Topic: "ev", GroupID: "g", DeadLetterTopic: "ev-dl", Decoder: testDecoder{}}
+	o := Options{Brokers: []string{"127.0.0.1:1"}, Topic: "ev", GroupID: "g", DeadLetterTopic: "ev-dl", NewDecoder: jsonDecoder}
 	for _, c := range []struct {
 		pos  stream.Position
 		want string

@@ -1,7 +1,6 @@
 package kafka
 
 import (
-	"encoding/json"
 	"fmt"
 	"iter"
 	"strconv"
@@ -9,34 +8,8 @@ import (
 	"freshet.dev/freshet/stream"
 )
 
-// testDecoder decodes the small JSON shape the tests produce. It stands in for
-// the stream package's JSON decoder, which is written separately.
-type testDecoder struct{}
-
-type testWire struct {
-	User  string   `json:"user"`
-	Item  string   `json:"item"`
-	Value *float64 `json:"value"`
-	Time  int64    `json:"time"`
-}
-
-func (testDecoder) Decode(rec []byte, b *stream.Batch) error {
-	var w testWire
-	if err := json.Unmarshal(rec, &w); err != nil {
-		return &stream.DecodeError{Reason: "not JSON: " + err.Error()}
-	}
-	if w.User == "" {
-		return &stream.DecodeError{Field: "user", Reason: "missing or empty"}
-	}
-	if w.Item == "" {
-		return &stream.DecodeError{Field: "item", Reason: "missing or empty"}
-	}
-	if w.Value == nil {
-		return &stream.DecodeError{Field: "value", Reason: "missing"}
-	}
-	b.Add(stream.Event{User: []byte(w.User), Item: []byte(w.Item), Value: *w.Value, Time: w.Time})
-	return nil
-}
+// jsonDecoder is the decoder the daemon uses for Kafka records.
+func jsonDecoder() stream.Decoder { return stream.NewJSONDecoder(stream.DecodeOptions{}) }
 
 // rawDecoder adds a fixed event per record without parsing it: the
 // benchmark's consume-only baseline.
