@@ -50,8 +50,9 @@
 // # Cost
 //
 // Encoding reuses the Store's buffers: WriteRows and Append allocate only when
-// a buffer must grow. Snapshot rows go through 1 MiB checksummed blocks and a
-// 4 MiB bufio.Writer. A whole Append is one record held in memory before it is
+// a buffer must grow. Snapshot rows are collected in 1 MiB checksummed blocks,
+// which pass through a 256 KiB bufio.Writer without being copied again (small
+// frames are buffered). A whole Append is one record held in memory before it is
 // written, so that it stays atomic.
 package checkpoint
 
@@ -108,7 +109,7 @@ const DefaultKeep = 1
 
 const (
 	snapBlockSize  = 1 << 20
-	snapBufferSize = 4 << 20
+	snapBufferSize = 256 << 10
 	readBufferSize = 1 << 20
 	lockName       = "LOCK"
 )
@@ -152,6 +153,7 @@ type Store struct {
 	logF    *os.File
 	logName string
 	logEnd  int64
+	lastSeq uint64 // meta.Seq of the last Append
 	rec     []byte // reused record buffer
 	block   []byte // reused snapshot block buffer
 

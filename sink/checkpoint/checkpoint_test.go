@@ -676,7 +676,7 @@ func TestBadInput(t *testing.T) {
 			}
 		})
 	}
-	// Nothing bad reached the disk: the store still recovers to empty.
+	// The refused calls wrote nothing: the store goes on normally.
 	if err := s.Append(nil, meta); err != nil {
 		t.Fatal(err)
 	}
@@ -686,10 +686,42 @@ func TestBadInput(t *testing.T) {
 	if err := s.WriteRows(short); err == nil || !strings.Contains(err.Error(), "record 1 (item row 7)") {
 		t.Fatalf("WriteRows of a short vector = %v", err)
 	}
+	if err := s.WriteRows(firstOf(short)); err != nil {
+		t.Fatal(err)
+	}
+	if err := s.Commit(meta); err == nil || !strings.Contains(err.Error(), "no Append since the last WriteRows") {
+		t.Fatalf("Commit without the final Append = %v", err)
+	}
+	next := &online.Meta{Format: online.MetaFormat, Rank: 3, Seq: 2}
+	if err := s.Append(nil, next); err != nil {
+		t.Fatal(err)
+	}
+	if err := s.Commit(meta); err == nil || !strings.Contains(err.Error(), "meta seq 1 is not the seq 2 of the last Append") {
+		t.Fatalf("Commit with an older meta = %v", err)
+	}
+	if err := s.Commit(next); err != nil {
+		t.Fatalf("Commit after the refusals: %v", err)
+	}
+	s.Close()
+	s2, got, m, _ := recoverDir(t, dir, 0)
+	want := state{}
+	want.apply(&short.Recs[0])
+	sameState(t, got, want)
+	sameMeta(t, m, next)
+	s = s2
+	defer s2.Close()
 	if err := s.Append(nil, &online.Meta{Format: online.MetaFormat, Rank: 4}); err == nil ||
 		!strings.Contains(err.Error(), "meta rank 4 differs from the log's rank 3") {
 		t.Fatalf("Append at another rank = %v", err)
 	}
+}
+
+// short2 returns the first record of rs alone.
+func firstOf(rs *online.RowSet) *online.RowSet {
+	one := new(online.RowSet)
+	one.Reset(rs.Rank)
+	one.Append(rs.Recs[0])
+	return one
 }
 
 func TestWriteBeforeRecover(t *testing.T) {
@@ -749,7 +781,12 @@ func TestWriteRowsDoesNotAllocate(t *testing.T) {
 	}); n != 0 {
 		t.Errorf("WriteRows allocates %.1f times per call, want 0", n)
 	}
-	// Append allocates for the meta JSON only, never per row.
+	// Append allocates for the meta JSON only (a few times, through
+	// encoding/json), never per row.
+	if raceEnabled {
+		t.Log("Append allocation count not checked under -race (sync.Pool drops items)")
+		return
+	}
 	small, large := m.changes(1), m.changes(2000)
 	if err := s.Append(large, m.nextMeta()); err != nil {
 		t.Fatal(err)
@@ -757,7 +794,7 @@ func TestWriteRowsDoesNotAllocate(t *testing.T) {
 	meta := m.nextMeta()
 	a1 := testing.AllocsPerRun(5, func() { s.Append(small, meta) })
 	a2 := testing.AllocsPerRun(5, func() { s.Append(large, meta) })
-	if a1 != a2 || a1 > 8 {
-		t.Errorf("Append allocates %.1f times for 1 row and %.1f for 2000 rows; want equal and at most 8", a1, a2)
+	if a1 > 8 || a2 > 8 {
+		t.Errorf("Append allocates %.1f times for 1 row and %.1f for 2000 rows; want at most 8 either way", a1, a2)
 	}
 }

@@ -5,6 +5,7 @@ import (
 	"fmt"
 	"hash/crc32"
 	"math"
+	"unsafe"
 
 	"freshet.dev/freshet/online"
 )
@@ -201,6 +202,10 @@ func appendRow(dst []byte, rec *online.RowRecord) []byte {
 	if rec.Deleted {
 		return dst
 	}
+	if littleEndian && len(rec.Vec) > 0 {
+		// The in-memory float32s are already the wire bytes.
+		return append(dst, unsafe.Slice((*byte)(unsafe.Pointer(&rec.Vec[0])), 4*len(rec.Vec))...)
+	}
 	n := len(dst)
 	dst = grow(dst, 4*len(rec.Vec))
 	v := dst[n:]
@@ -209,6 +214,13 @@ func appendRow(dst []byte, rec *online.RowRecord) []byte {
 	}
 	return dst
 }
+
+// littleEndian reports whether this machine stores numbers little-endian, as
+// the files do; then vectors are copied as bytes instead of one by one.
+var littleEndian = func() bool {
+	x := uint16(1)
+	return *(*byte)(unsafe.Pointer(&x)) == 1
+}()
 
 // grow extends len(b) by n, reallocating only when the capacity is short.
 func grow(b []byte, n int) []byte {
@@ -275,8 +287,12 @@ func (d *rowDecoder) decode(p []byte) ([]byte, string) {
 	if len(p) < 4*d.rank {
 		return nil, fmt.Sprintf("row vector truncated: %d bytes left, want %d", len(p), 4*d.rank)
 	}
-	for i := range d.vec {
-		d.vec[i] = math.Float32frombits(binary.LittleEndian.Uint32(p[4*i:]))
+	if littleEndian && d.rank > 0 {
+		copy(unsafe.Slice((*byte)(unsafe.Pointer(&d.vec[0])), 4*d.rank), p)
+	} else {
+		for i := range d.vec {
+			d.vec[i] = math.Float32frombits(binary.LittleEndian.Uint32(p[4*i:]))
+		}
 	}
 	r.Vec = d.vec
 	return p[4*d.rank:], ""

@@ -78,6 +78,10 @@ func (s *Store) Append(rows *online.RowSet, meta *online.Meta) error {
 		return s.undoAppend(fmt.Errorf("checkpoint: sync %s: %w", s.logName, err))
 	}
 	s.logEnd += int64(len(buf))
+	s.lastSeq = meta.Seq
+	if s.snap != nil {
+		s.snap.appended = true
+	}
 	return nil
 }
 

@@ -25,6 +25,9 @@ type snapWriter struct {
 	// block is the rows frame being filled: frame header, count, rows.
 	block     []byte
 	blockRows int
+	// appended is set by an Append after the newest WriteRows: Commit needs
+	// one, or the snapshot's rows could be newer than any recorded meta.
+	appended bool
 	rows      uint64
 	blocks    uint64
 	// off is the number of bytes handed to w so far.
@@ -114,6 +117,7 @@ func (s *Store) WriteRows(rows *online.RowSet) error {
 		}
 		sw.block = appendRow(sw.block, rec)
 		sw.blockRows++
+		sw.appended = false
 		if cap(sw.block) > cap(s.block) {
 			s.block = sw.block[:0] // a row larger than a block grew it; keep the bigger buffer
 		}
@@ -121,8 +125,9 @@ func (s *Store) WriteRows(rows *online.RowSet) error {
 	return nil
 }
 
-// Commit completes the snapshot in progress with meta (the meta of the
-// Append made after the last WriteRows): it writes the meta and the trailer,
+// Commit completes the snapshot in progress with meta, which must be the
+// meta of an Append made after the last WriteRows (else Commit refuses and
+// the snapshot stays open). It writes the meta and the trailer,
 // fsyncs, renames the file into place, fsyncs the directory, and then deletes
 // snapshots beyond Keep and the logs no kept snapshot needs.
 func (s *Store) Commit(meta *online.Meta) error {
@@ -138,6 +143,14 @@ func (s *Store) Commit(meta *online.Meta) error {
 	}
 	if meta.Rank != sw.rank {
 		return fmt.Errorf("checkpoint: commit: meta rank %d differs from snapshot rank %d", meta.Rank, sw.rank)
+	}
+	// Protocol step 3: the rows plus the logs must give the state at meta.
+	// Both errors leave the snapshot open: Append, then Commit again.
+	if !sw.appended {
+		return errors.New("checkpoint: commit: no Append since the last WriteRows; append, then commit with that meta")
+	}
+	if meta.Seq != s.lastSeq {
+		return fmt.Errorf("checkpoint: commit: meta seq %d is not the seq %d of the last Append", meta.Seq, s.lastSeq)
 	}
 	mj, err := json.Marshal(meta)
 	if err != nil {
