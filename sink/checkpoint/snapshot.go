@@ -28,8 +28,8 @@ type snapWriter struct {
 	// appended is set by an Append after the newest WriteRows: Commit needs
 	// one, or the snapshot's rows could be newer than any recorded meta.
 	appended bool
-	rows      uint64
-	blocks    uint64
+	rows     uint64
+	blocks   uint64
 	// off is the number of bytes handed to w so far.
 	off int64
 }
