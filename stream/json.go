@@ -280,6 +280,12 @@ func (d *JSONDecoder) str(field string) ([]byte, error) {
 	p.i++ // opening quote
 	start := p.i
 	for p.i < len(p.b) {
+		for p.i < len(p.b) && !strSpecial[p.b[p.i]] {
+			p.i++
+		}
+		if p.i >= len(p.b) {
+			break
+		}
 		c := p.b[p.i]
 		if c == '"' {
 			s := p.b[start:p.i]
@@ -392,6 +398,16 @@ func hex4(b []byte) (uint16, bool) {
 	}
 	return v, true
 }
+
+// strSpecial marks the bytes that end the plain run of a JSON string: the
+// quote, the backslash and the control characters.
+var strSpecial = func() (t [256]bool) {
+	for c := range 0x20 {
+		t[c] = true
+	}
+	t['"'], t['\\'] = true, true
+	return t
+}()
 
 // skip checks and passes over one JSON value of any type.
 func (d *JSONDecoder) skip(depth int) error {

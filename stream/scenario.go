@@ -140,6 +140,7 @@ type Scenario struct {
 	eid       []byte
 	cand      []int32
 	weights   []float64
+	p         []float64 // scratch taste vector
 }
 
 var _ Source = (*Scenario)(nil)
@@ -216,6 +217,7 @@ func NewScenario(o ScenarioOptions, from Position) (*Scenario, error) {
 	s.rng = rand.New(&s.pcg)
 	s.cand = make([]int32, o.Candidates)
 	s.weights = make([]float64, o.Candidates)
+	s.p = make([]float64, o.Rank)
 	s.batch.Events = make([]Event, 0, o.BatchSize)
 	return s, nil
 }
@@ -337,6 +339,20 @@ func (s *Scenario) affinity(u, item int, at int64) float64 {
 	return a
 }
 
+// tasteVec writes p_u at event at into the scenario's scratch vector and
+// returns it. The sum c + δ is formed exactly as in affinity, so both give
+// the same dot products.
+func (s *Scenario) tasteVec(u int, at int64) []float64 {
+	k := s.k
+	c := s.commVec[s.taste(u, at)*k:][:k]
+	d := s.userDelta[u*k:][:k]
+	p := s.p[:k]
+	for j := range k {
+		p[j] = c[j] + d[j]
+	}
+	return p
+}
+
 // Expected returns the noise-free rating μ + b_u + b_i + p_u·q_i of listener
 // u for show i at event index at (before clipping or rounding). u and i are
 // population indices (listener-000123 is 123).
@@ -368,10 +384,16 @@ func (s *Scenario) generate(i int64, b *Batch) {
 			// cumulative weights; the maximum is subtracted for range).
 			m := min(o.Candidates, ni)
 			best := math.Inf(-1)
+			p := s.tasteVec(u, i)
 			for j := range m {
 				c := int32(rng.IntN(ni))
 				s.cand[j] = c
-				a := (s.showBias[c] + s.affinity(u, int(c), i)) / s.temp
+				q := s.showVec[int(c)*s.k:][:s.k]
+				var dot float64
+				for x := range q {
+					dot += p[x] * q[x]
+				}
+				a := (s.showBias[c] + dot) / s.temp
 				s.weights[j] = a
 				best = max(best, a)
 			}
