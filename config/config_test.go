@@ -1,12 +1,17 @@
 package config
 
 import (
+	"bytes"
+	"errors"
+	"io"
 	"os"
 	"path/filepath"
 	"reflect"
 	"strings"
 	"testing"
 	"time"
+
+	"gopkg.in/yaml.v3"
 )
 
 // noEnv is an empty environment, so tests do not depend on the caller's.
@@ -281,5 +286,48 @@ func TestWarnings(t *testing.T) {
 	}
 	if got := Default().Warnings(); len(got) != 0 {
 		t.Errorf("Default().Warnings() = %q, want none", got)
+	}
+}
+
+// TestAgreesWithYAMLStrictDecode cross-checks the key-by-key decoder against
+// yaml.v3's own strict decode (Decoder.KnownFields(true)) on the good files:
+// both must give the same Config. The one intended difference is a section
+// written with no keys ("redis:" or "checkpoint: ~"), which yaml.v3 resets to
+// zero values and this package leaves at its defaults; implicit.good.yaml
+// has such sections and is checked with them removed.
+func TestAgreesWithYAMLStrictDecode(t *testing.T) {
+	files, _ := filepath.Glob("testdata/*.good.yaml")
+	for _, f := range files {
+		data, err := os.ReadFile(f)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var kept []string
+		for _, line := range strings.Split(string(data), "\n") {
+			if filepath.Base(f) != "implicit.good.yaml" || line != "redis:" && line != "checkpoint: ~" {
+				kept = append(kept, line)
+			}
+		}
+		data = []byte(strings.Join(kept, "\n"))
+		ours, err := ParseEnv(data, f, noEnv)
+		if err != nil {
+			t.Fatalf("%s: %v", f, err)
+		}
+		theirs := Default()
+		dec := yaml.NewDecoder(bytes.NewReader(data))
+		dec.KnownFields(true)
+		if err := dec.Decode(theirs); err != nil && !errors.Is(err, io.EOF) {
+			t.Fatalf("%s: yaml.v3 strict decode: %v", f, err)
+		}
+		if !reflect.DeepEqual(plain(ours), theirs) {
+			t.Errorf("%s: decoders disagree:\nours\n%s\nyaml.v3\n%s", f, ours.Dump(), theirs.Dump())
+		}
+	}
+	// And yaml.v3's strict mode refuses the unknown key too.
+	data, _ := os.ReadFile("testdata/unknown_key.bad.yaml")
+	dec := yaml.NewDecoder(bytes.NewReader(data))
+	dec.KnownFields(true)
+	if err := dec.Decode(Default()); err == nil || !strings.Contains(err.Error(), "line 3") {
+		t.Errorf("yaml.v3 strict decode of unknown_key.bad.yaml = %v, want an error at line 3", err)
 	}
 }
