@@ -1,6 +1,7 @@
 package online
 
 import (
+	"fmt"
 	"math"
 	"math/rand/v2"
 	"strings"
@@ -303,6 +304,10 @@ func TestMonitorStateAdapts(t *testing.T) {
 	if err := small.UnmarshalState([]byte(bad)); err == nil || !strings.Contains(err.Error(), "error_window") {
 		t.Errorf("negative since: error %v, want one naming error_window", err)
 	}
+	huge := strings.Replace(string(b), `"sq_total":{"s":`, `"sq_total":{"s":1e300,"ignored":`, 1)
+	if err := small.UnmarshalState([]byte(huge)); err == nil || !strings.Contains(err.Error(), "sq_total") {
+		t.Errorf("total 1e300: error %v, want one naming sq_total", err)
+	}
 	if impl.Status() != before {
 		t.Error("a failed UnmarshalState changed the monitor")
 	}
@@ -330,9 +335,53 @@ func TestMonitorDoesNotAllocate(t *testing.T) {
 }
 
 func BenchmarkMonitorObserveRating(b *testing.B) {
-	m, _ := NewMonitor(MonitorOptions{ADWIN: true})
-	rng := rand.New(rand.NewPCG(1, 1))
-	for b.Loop() {
-		m.ObserveRating(rng.Float64()*4+1, 3, false, false)
+	for _, adwin := range []bool{false, true} {
+		b.Run(fmt.Sprintf("adwin=%v", adwin), func(b *testing.B) {
+			m, err := NewMonitor(MonitorOptions{ADWIN: adwin})
+			if err != nil {
+				b.Fatal(err)
+			}
+			rng := rand.New(rand.NewPCG(1, 1))
+			for b.Loop() {
+				m.ObserveRating(rng.Float64()*4+1, 3, false, false)
+			}
+		})
 	}
+}
+
+func FuzzMonitorUnmarshalState(f *testing.F) {
+	// UnmarshalState must never panic, and a state it accepts must leave a
+	// monitor that keeps working.
+	for _, o := range []MonitorOptions{{Window: 8, ADWIN: true}, {Mode: Implicit, Window: 8, ADWIN: true}} {
+		m, err := NewMonitor(o)
+		if err != nil {
+			f.Fatal(err)
+		}
+		feedMixed(m, 0, 100)
+		b, err := m.MarshalState()
+		if err != nil {
+			f.Fatal(err)
+		}
+		f.Add(b)
+	}
+	f.Add([]byte(`{"format":1,"mode":"explicit","error_window":{"size":3,"head":2,"values":"AAAAAAAA8D8="}}`))
+	f.Fuzz(func(t *testing.T, b []byte) {
+		for _, mode := range []Mode{Explicit, Implicit} {
+			m, err := NewMonitor(MonitorOptions{Mode: mode, Window: 5, ADWIN: true})
+			if err != nil {
+				t.Fatal(err)
+			}
+			if m.UnmarshalState(b) != nil {
+				continue
+			}
+			for i := range 70 {
+				m.ObserveRating(3, float64(i%5), i%2 == 0, false)
+				m.ObservePositive(0.5, false, false)
+				m.ObserveHit(i%3 == 0)
+			}
+			if _, err := m.MarshalState(); err != nil {
+				t.Fatalf("accepted state then failed to marshal: %v", err)
+			}
+		}
+	})
 }

@@ -117,12 +117,29 @@ func InTopN(scores []float32, target int32, n int) bool {
 		}
 		return true
 	}
-	for i, s := range scores {
-		if s > st || (s == st && int32(i) < target) {
-			if above++; above >= n {
-				return false
-			}
+	// Items before target rank above it on a tie, items after it only when
+	// strictly higher. Counting without a branch per item, and testing for
+	// the early exit once per block, keeps the loop free of mispredictions.
+	const block = 256
+	for lo := 0; lo < len(scores); lo += block {
+		hi := min(lo+block, len(scores))
+		for i := lo; i < min(hi, int(target)); i++ {
+			above += topnBool(scores[i] >= st)
+		}
+		for i := max(lo, int(target)+1); i < hi; i++ {
+			above += topnBool(scores[i] > st)
+		}
+		if above >= n {
+			return false
 		}
 	}
 	return true
+}
+
+// topnBool returns 1 for true and 0 for false.
+func topnBool(b bool) int {
+	if b {
+		return 1
+	}
+	return 0
 }
