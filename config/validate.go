@@ -47,7 +47,7 @@ func (k *checker) float(path string, v, lo, hi float64, loOpen, hiOpen bool) {
 	}
 }
 
-// finite checks v is a finite number ≥ lo.
+// atLeast checks that v is a finite number ≥ lo.
 func (k *checker) atLeast(path string, v, lo float64) {
 	if math.IsNaN(v) || math.IsInf(v, 0) || v < lo {
 		k.fail(path, "must be a finite number ≥ %s, got %s", fmtFloat(lo), fmtFloat(v))
