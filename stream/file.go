@@ -54,7 +54,8 @@ type FileOptions struct {
 	// Follow cannot be used with a gzip file.
 	Follow bool
 	// PollInterval is the polling period in follow mode. If zero,
-	// DefaultPollInterval is used.
+	// DefaultPollInterval is used. Polls are at most 500 ms apart whatever
+	// the setting, so that an idle source still hands out a batch in time.
 	PollInterval time.Duration
 	// Rejects receives the records that fail to decode. If nil they are
 	// only counted (Batch.Rejected).
@@ -69,7 +70,8 @@ type FileOptions struct {
 // line's number (from 1; the header of a CSV or TSV file is line 1). Offsets
 // count bytes of the decompressed stream: resuming a plain file seeks there,
 // resuming a gzip file decompresses and discards the bytes before it. Lines end
-// with "\n" or "\r\n"; blank lines are skipped; a line longer than MaxLineLen
+// with "\n" or "\r\n"; a UTF-8 byte order mark at the start is ignored;
+// blank lines are skipped; a line longer than MaxLineLen
 // is rejected with its first 4 KiB as the raw record.
 //
 // A reader goroutine decodes the next batch while the caller works on the
@@ -353,14 +355,15 @@ func (s *FileSource) fill(b *Batch) error {
 			if idle >= idleEmit {
 				return nil // an empty batch, so the caller can flush on time
 			}
-			t := time.NewTimer(s.opts.PollInterval)
+			d := min(s.opts.PollInterval, idleEmit)
+			t := time.NewTimer(d)
 			select {
 			case <-t.C:
 			case <-s.stop:
 				t.Stop()
 				return errStopped
 			}
-			idle += s.opts.PollInterval
+			idle += d
 			continue
 		}
 		lineNo := s.pos.Line
@@ -376,6 +379,9 @@ func (s *FileSource) fill(b *Batch) error {
 			continue
 		}
 		line = bytes.TrimSuffix(line, []byte("\r"))
+		if lineNo == 1 {
+			line = bytes.TrimPrefix(line, []byte("\xef\xbb\xbf")) // a UTF-8 byte order mark
+		}
 		if len(bytes.TrimSpace(line)) == 0 {
 			b.Pos = s.pos
 			continue

@@ -159,6 +159,7 @@ func TestFileFormats(t *testing.T) {
 		{"csv gzip by magic", "e.csv.gz", csv, true, FileOptions{}, 2, 1},
 		{"csv gzip without extension", "e.data", csv, true, FileOptions{Format: "csv"}, 2, 1},
 		{"tsv implicit", "e.tsv", tsv, false, FileOptions{Decode: DecodeOptions{Implicit: true}}, 2, 0},
+		{"jsonl with byte order mark", "e.jsonl", "\xef\xbb\xbf" + sampleJSONL, false, FileOptions{Decode: DecodeOptions{MaxValue: 5}}, 3, 2},
 		{"jsonl gzip", "e.jsonl.gz", sampleJSONL, true, FileOptions{Decode: DecodeOptions{MaxValue: 5}}, 3, 2},
 	}
 	for _, tt := range tests {
