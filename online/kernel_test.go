@@ -1,0 +1,94 @@
+package online
+
+import (
+	"math"
+	"math/rand/v2"
+	"testing"
+)
+
+func randVec(r *rand.Rand, n int) []float32 {
+	v := make([]float32, n)
+	for f := range v {
+		v[f] = float32(r.NormFloat64())
+	}
+	return v
+}
+
+// The fast kernels sum in another order and may fuse multiply-adds, so they
+// match the reference loops to rounding, not bit for bit. Bound for a dot
+// product of length n in float32 (standard error analysis, common practice):
+// |fl(a·b) − a·b| ≤ n·u·Σ|a_f b_f| with u = 2⁻²⁴; we allow 2n·u·Σ|a_f b_f|
+// between two such computations.
+func TestDotFastMatchesReference(t *testing.T) {
+	r := rand.New(rand.NewPCG(1, 2))
+	t.Logf("fast kernels: %s", fastKernelName)
+	for n := 0; n <= 131; n++ {
+		for trial := 0; trial < 5; trial++ {
+			a, b := randVec(r, n), randVec(r, n)
+			var abs float64
+			for f := range a {
+				abs += math.Abs(float64(a[f]) * float64(b[f]))
+			}
+			tol := 2*float64(n)*0x1p-24*abs + 1e-30
+			ref := dotRef(a, b)
+			for name, got := range map[string]float32{"fast": dotFast(a, b), "unrolled": dotUnrolled(a, b)} {
+				if d := math.Abs(float64(got) - float64(ref)); d > tol {
+					t.Fatalf("n=%d %s dot = %v, reference %v, |diff| %g > tol %g", n, name, got, ref, d, tol)
+				}
+			}
+		}
+	}
+}
+
+// Each updated value is a·x + b·y: at most two roundings apart between the
+// fused and unfused forms, so 4u·(|a x| + |b y|) bounds the difference.
+func TestUpdateFastMatchesReference(t *testing.T) {
+	r := rand.New(rand.NewPCG(3, 4))
+	a1, b1, a2, b2 := float32(0.9996), float32(0.013), float32(0.9998), float32(-0.021)
+	for n := 1; n <= 131; n++ {
+		p0, q0 := randVec(r, n), randVec(r, n)
+		for _, fn := range []struct {
+			name string
+			f    func(p, q []float32, a1, b1, a2, b2 float32) float32
+		}{{"fast", updateFast}, {"unrolled", updateUnrolled}} {
+			pr, qr := append([]float32(nil), p0...), append([]float32(nil), q0...)
+			pf, qf := append([]float32(nil), p0...), append([]float32(nil), q0...)
+			if c := updateRef(pr, qr, a1, b1, a2, b2); c != 0 {
+				t.Fatalf("reference check = %v for finite values, want 0", c)
+			}
+			if c := fn.f(pf, qf, a1, b1, a2, b2); c != 0 {
+				t.Fatalf("n=%d %s check = %v for finite values, want 0", n, fn.name, c)
+			}
+			for f := range p0 {
+				x, y := float64(p0[f]), float64(q0[f])
+				tp := 4 * 0x1p-24 * (math.Abs(float64(a1)*x) + math.Abs(float64(b1)*y))
+				tq := 4 * 0x1p-24 * (math.Abs(float64(a2)*y) + math.Abs(float64(b2)*x))
+				if d := math.Abs(float64(pf[f] - pr[f])); d > tp {
+					t.Fatalf("n=%d %s p[%d] = %v, reference %v", n, fn.name, f, pf[f], pr[f])
+				}
+				if d := math.Abs(float64(qf[f] - qr[f])); d > tq {
+					t.Fatalf("n=%d %s q[%d] = %v, reference %v", n, fn.name, f, qf[f], qr[f])
+				}
+			}
+		}
+	}
+}
+
+func TestUpdateCheckFlagsOverflow(t *testing.T) {
+	for _, n := range []int{3, 8, 17, 64} {
+		for _, f := range []func(p, q []float32, a1, b1, a2, b2 float32) float32{updateRef, updateUnrolled, updateFast} {
+			p := make([]float32, n)
+			q := make([]float32, n)
+			p[n-1], q[n-1] = 3e38, 3e38 // a1·p + b1·q overflows float32 (max ≈ 3.4e38)
+			if c := f(p, q, 1, 1, 1, 1); c == 0 {
+				t.Fatalf("n=%d: check = 0 after an overflow, want NaN", n)
+			}
+		}
+	}
+	if c := finiteCheck([]float32{1, float32(math.NaN())}); c == 0 {
+		t.Fatal("finiteCheck missed a NaN")
+	}
+	if c := finiteCheck([]float32{1, -3e38, 0}); c != 0 {
+		t.Fatalf("finiteCheck = %v for finite values", c)
+	}
+}
