@@ -360,7 +360,9 @@ type MonitorStatus struct {
 	ColdItemShare   float64 `json:"cold_item_share"`
 	ColdEitherShare float64 `json:"cold_either_share"`
 
-	// Drift.
+	// Drift. PHAlarms counts Page-Hinkley alarms (one per change, as the
+	// test restarts); ADWINAlarms counts the checks at which ADWIN's window
+	// shrank, and one change may shrink it at a few successive checks.
 	PHAlarms    uint64 `json:"ph_alarms"`
 	ADWINAlarms uint64 `json:"adwin_alarms"`
 	// LastAlarmEvent is the value of Events when the latest alarm was raised

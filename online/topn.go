@@ -2,15 +2,8 @@ package online
 
 import "math"
 
-// Ranking order used by TopN and InTopN. Item a ranks above item b when
-//
-//	score[a] > score[b], or score[a] == score[b] and a < b,
-//
-// with NaN ranking below every number (−Inf included) and NaNs ordered by
-// index among themselves. The order is total, so both functions are exact
-// and deterministic: ties go to the lower item row.
-
-// rankAbove reports whether item a (score sa) ranks above item b (score sb).
+// rankAbove reports whether item a (score sa) ranks above item b (score sb)
+// in the order TopN documents.
 func rankAbove(sa float32, a int32, sb float32, b int32) bool {
 	na, nb := sa != sa, sb != sb
 	switch {
@@ -24,9 +17,15 @@ func rankAbove(sa float32, a int32, sb float32, b int32) bool {
 	return a < b
 }
 
-// TopN returns the n best items of scores (their indices, best first, in the
-// ranking order documented above), appended to dst[:0]. Fewer are returned
-// when scores has fewer than n entries; none when n ≤ 0.
+// TopN returns the n best items of scores (their indices, best first),
+// appended to dst[:0]. Fewer are returned when scores has fewer than n
+// entries; none when n ≤ 0. Item a ranks above item b when
+//
+//	score[a] > score[b], or score[a] == score[b] and a < b,
+//
+// with NaN ranking below every number (−Inf included) and NaNs ordered by
+// index among themselves. The order is total, so the result is exact and
+// deterministic: ties go to the lower item row.
 //
 // It keeps a min-heap of the n best seen so far in dst, its root the worst of
 // them: each further item is compared with the root and, when it ranks above
@@ -96,7 +95,7 @@ func topnSiftDown(scores []float32, h []int32, i int) {
 }
 
 // InTopN reports whether item target is among the n best items of scores in
-// the ranking order documented above (ties go to the lower index), which is
+// the ranking order of TopN (ties go to the lower index), which is
 // the same as target appearing in TopN(scores, n, nil). It counts the items
 // ranking above target and stops once n are found: O(len(scores)), no
 // allocation. It reports false when target is out of range or n ≤ 0.
