@@ -95,10 +95,11 @@ func topnSiftDown(scores []float32, h []int32, i int) {
 }
 
 // InTopN reports whether item target is among the n best items of scores in
-// the ranking order of TopN (ties go to the lower index), which is
-// the same as target appearing in TopN(scores, n, nil). It counts the items
-// ranking above target and stops once n are found: O(len(scores)), no
-// allocation. It reports false when target is out of range or n ≤ 0.
+// the ranking order of TopN (ties go to the lower index), which is the same
+// as target appearing in TopN(scores, n, nil). It counts the items ranking
+// above target, in blocks of 256, and stops after the block in which the
+// count reaches n: O(len(scores)) at worst, no allocation. It reports false
+// when target is out of range or n ≤ 0.
 func InTopN(scores []float32, target int32, n int) bool {
 	if n <= 0 || target < 0 || int(target) >= len(scores) {
 		return false
