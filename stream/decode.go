@@ -402,8 +402,8 @@ func daysIn(year, month int) int {
 //	doe = 365·yoe + ⌊yoe/4⌋ − ⌊yoe/100⌋ + doy
 //	days = 146097·era + doe − 719468
 //
-// (the well-known civil-date algorithm; 719468 is the day number of
-// 1970-01-01 counted from 0000-03-01).
+// (H. Hinnant, "chrono-Compatible Low-Level Date Algorithms", days_from_civil;
+// 719468 is the day number of 1970-01-01 counted from 0000-03-01).
 func daysFromCivil(y, m, d int64) int64 {
 	if m <= 2 {
 		y--
