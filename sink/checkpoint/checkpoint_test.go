@@ -798,3 +798,42 @@ func TestWriteRowsDoesNotAllocate(t *testing.T) {
 		t.Errorf("Append allocates %.1f times for 1 row and %.1f for 2000 rows; want at most 8 either way", a1, a2)
 	}
 }
+
+func TestZeroTailIsTorn(t *testing.T) {
+	// A file system may extend a file for a final write whose data never
+	// reached the disk: the tail reads as zeros.
+	dir := t.TempDir()
+	s, _, _, _ := recoverDir(t, dir, 0)
+	m := newSim(t, 8, 4)
+	for range 3 {
+		m.appendN(s, 5)
+	}
+	end := s.logEnd
+	s.Close()
+	path := filepath.Join(dir, logName(1))
+	f, err := os.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
+	if err != nil {
+		t.Fatal(err)
+	}
+	f.Write(make([]byte, 300))
+	f.Close()
+	s2, got, meta, info := recoverDir(t, dir, 0)
+	defer s2.Close()
+	sameState(t, got, m.live)
+	sameMeta(t, meta, m.meta)
+	if info.TornBytes != 300 || info.TornOffset != end {
+		t.Errorf("info %+v, want 300 torn bytes at %d", info, end)
+	}
+
+	// Non-zero bytes there are damage, not a torn write: a torn write keeps a
+	// prefix of the record, whose first 16 bytes are a checksummed header.
+	s2.Close()
+	f, _ = os.OpenFile(path, os.O_WRONLY|os.O_APPEND, 0)
+	f.Write([]byte("this is not a record header"))
+	f.Close()
+	s3 := open(t, dir, 0)
+	defer s3.Close()
+	if _, _, err := s3.Recover(state{}.apply); !errors.Is(err, ErrCorrupt) {
+		t.Errorf("Recover over a garbage tail = %v, want ErrCorrupt", err)
+	}
+}
