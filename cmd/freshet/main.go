@@ -1,0 +1,25 @@
+// Command freshet keeps user and item latent-factor vectors fresh from a live
+// stream of interactions.
+//
+// Usage:
+//
+//	freshet run      [-config FILE] [-data DIR] [-check]   run the daemon (default: the built-in demo)
+//	freshet replay   -file FILE [-curve OUT.csv]            evaluate a file offline, test-then-train
+//	freshet generate [-events N] [-o FILE]                  write the demo scenario as JSON lines
+//
+// Exit codes: 0 after a clean stop, 2 for bad usage or configuration, 1 for a
+// runtime failure.
+package main
+
+import (
+	"context"
+	"fmt"
+	"os"
+)
+
+func main() {
+	if err := run(context.Background(), os.Args[1:], os.Stdout, os.Stderr); err != nil {
+		fmt.Fprintf(os.Stderr, "freshet: %v\n", err)
+		os.Exit(exitCode(err))
+	}
+}

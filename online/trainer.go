@@ -1,0 +1,754 @@
+package online
+
+import (
+	"context"
+	"errors"
+	"fmt"
+	"io"
+	"sync"
+	"time"
+
+	"go.uber.org/zap"
+
+	"freshet.dev/freshet/stream"
+)
+
+// Trainer defaults.
+const (
+	DefaultFlushInterval    = time.Second
+	DefaultFlushRows        = 50000
+	DefaultSnapshotInterval = 5 * time.Minute
+	DefaultSnapshotChunk    = 1 << 14
+	DefaultOfferInterval    = 100 * time.Millisecond
+	DefaultProgress         = 5 * time.Second
+	DefaultRecallRate       = 50
+	// touchGroup is how many events' rows are touched before they are
+	// stepped, so that their cache misses overlap (REFERENCES: 2–3× out of
+	// cache).
+	touchGroup = 16
+)
+
+// TrainerOptions configure a Trainer. A zero field takes the default named in
+// its comment.
+type TrainerOptions struct {
+	Model   *Model   // required
+	Monitor *Monitor // required
+	Source  stream.Source
+	// Checkpoint makes cuts durable; required (the embedded run uses local
+	// checkpoints too).
+	Checkpoint Checkpointer
+	// Publisher receives changed rows for the serving copy; nil for none.
+	Publisher Publisher
+	// Resume is the meta of the restored checkpoint; nil for a new model.
+	Resume *Meta
+	Logger *zap.Logger // nil: no logging
+
+	// FlushInterval is the longest time between durable cuts; default 1s.
+	FlushInterval time.Duration
+	// FlushRows forces a cut when this many rows are dirty; default 50000.
+	FlushRows int
+	// SnapshotInterval is the time between full snapshots; default 5m.
+	// Negative disables periodic snapshots.
+	SnapshotInterval time.Duration
+	// SnapshotChunk is the number of rows copied per batch boundary while a
+	// snapshot or a full publish is in progress; default 16384.
+	SnapshotChunk int
+	// OfferInterval is the time between hand-overs of changed rows to the
+	// Publisher; default 100ms.
+	OfferInterval time.Duration
+	// Progress is the interval between progress log lines; default 5s.
+	// Negative turns the periodic line off (the final one is still logged).
+	Progress time.Duration
+	// RecallRate caps sampled recall@N evaluations (implicit mode) per second
+	// of wall time; default 50; negative turns sampling off. RecallEvery,
+	// when positive, replaces the cap with a deterministic sample of every
+	// n-th event (offline evaluation).
+	RecallRate  float64
+	RecallEvery int
+	// TopN is the N of recall@N; default 10.
+	TopN int
+	// MaxRate paces the stream to at most this many events per second of wall
+	// time (the demo); zero for as fast as the source goes.
+	MaxRate float64
+	// OnAlarm, when set, is called for each drift alarm (after it is logged).
+	OnAlarm func(Alarm)
+	// Curve, when set, is called at the first batch boundary after every
+	// CurveEvery applied events (default 1000), for prequential curves.
+	Curve      func(Counts, MonitorStatus)
+	CurveEvery uint64
+
+	// now is the wall clock (tests may replace it).
+	now func() time.Time
+}
+
+// Alarm is a drift alarm raised by the monitor.
+type Alarm struct {
+	Event  uint64 // index of the event (Counts.Applied after it)
+	Time   int64  // model time (ms)
+	Status MonitorStatus
+}
+
+// Trainer owns the model's tables and drives them from a Source: for each
+// event it scores, then learns (test-then-train), and at batch boundaries it
+// hands copies of changed rows to the checkpoint writer and the publisher.
+//
+// # Drain order
+//
+// When Run's context is cancelled (SIGTERM) or the source ends, the trainer
+//  1. stops fetching and finishes the batch in hand;
+//  2. takes a final cut and waits until the checkpoint writer has made it
+//     durable;
+//  3. acknowledges that cut's position to the source (Kafka commit);
+//  4. hands the last changed rows to the publisher (its own Close flushes
+//     them);
+//  5. logs a final progress line and returns nil.
+//
+// A snapshot in progress is abandoned: the previous snapshot and the logs
+// still recover the exact state.
+type Trainer struct {
+	o    TrainerOptions
+	m    *Model
+	mode Mode
+	mon  *Monitor
+	src  stream.Source
+	log  *zap.Logger
+
+	seq    uint64
+	pos    stream.Position
+	time   int64
+	counts Counts
+
+	// writer hand-off
+	jobs    chan job
+	free    chan *RowSet
+	wdone   chan struct{}
+	ackMu   sync.Mutex
+	acked   *Meta // newest durable cut not yet acknowledged to the source
+	werr    error
+	commits uint64
+
+	// cut bookkeeping
+	lastFlush    time.Time
+	lastFlushSeq uint64
+	flushedPos   stream.Position
+	flushedAny   bool
+
+	// snapshot and full-publish cursors
+	snap      cursor
+	lastSnap  time.Time
+	full      cursor
+	lastOffer time.Time
+	stallMax  time.Duration
+
+	// recall sampling
+	scores     []float32
+	recallTok  float64
+	lastRefill time.Time
+
+	// curve
+	nextCurve uint64
+
+	// pacing
+	paceStart  time.Time
+	paceEvents uint64
+
+	// progress
+	lastProg       time.Time
+	lastProgEvents uint64
+	alarms         uint64
+	startApplied   uint64
+
+	// group holds the resolved rows of the events being stepped.
+	group [touchGroup]groupEv
+}
+
+type groupEv struct {
+	ev         *stream.Event
+	u, i       int32
+	newU, newI bool
+	ok         bool
+}
+
+type cursor struct {
+	on   bool
+	side Side
+	row  int32
+}
+
+type jobKind uint8
+
+const (
+	jobAppend jobKind = iota
+	jobBegin
+	jobRows
+	jobCommit
+)
+
+type job struct {
+	kind jobKind
+	rows *RowSet
+	meta *Meta
+}
+
+// NewTrainer checks o and returns a Trainer ready to Run.
+func NewTrainer(o TrainerOptions) (*Trainer, error) {
+	if o.Model == nil || o.Monitor == nil || o.Source == nil || o.Checkpoint == nil {
+		return nil, errors.New("online: trainer needs a model, a monitor, a source and a checkpointer")
+	}
+	if o.FlushInterval <= 0 {
+		o.FlushInterval = DefaultFlushInterval
+	}
+	if o.FlushRows <= 0 {
+		o.FlushRows = DefaultFlushRows
+	}
+	if o.SnapshotInterval == 0 {
+		o.SnapshotInterval = DefaultSnapshotInterval
+	}
+	if o.SnapshotChunk <= 0 {
+		o.SnapshotChunk = DefaultSnapshotChunk
+	}
+	if o.OfferInterval <= 0 {
+		o.OfferInterval = DefaultOfferInterval
+	}
+	if o.Progress == 0 {
+		o.Progress = DefaultProgress
+	} else if o.Progress < 0 {
+		o.Progress = time.Duration(1<<63 - 1)
+	}
+	if o.RecallRate == 0 {
+		o.RecallRate = DefaultRecallRate
+	}
+	if o.CurveEvery == 0 {
+		o.CurveEvery = 1000
+	}
+	if o.TopN <= 0 {
+		o.TopN = 10
+	}
+	if o.Logger == nil {
+		o.Logger = zap.NewNop()
+	}
+	if o.now == nil {
+		o.now = time.Now
+	}
+	t := &Trainer{
+		o:     o,
+		m:     o.Model,
+		mode:  o.Model.Options().Mode,
+		mon:   o.Monitor,
+		src:   o.Source,
+		log:   o.Logger,
+		jobs:  make(chan job, 4),
+		free:  make(chan *RowSet, 8),
+		wdone: make(chan struct{}),
+	}
+	if r := o.Resume; r != nil {
+		t.seq = r.Seq
+		t.pos = r.Position.Clone()
+		t.time = r.Time
+		t.counts = r.Counts
+		t.flushedPos = t.pos.Clone()
+		t.flushedAny = true
+		t.lastFlushSeq = r.Seq
+	}
+	t.startApplied = t.counts.Applied
+	t.m.Track(ConsumerLog, true)
+	t.m.Track(ConsumerPublish, o.Publisher != nil)
+	return t, nil
+}
+
+// Run consumes the source until ctx is done or a finite source ends, then
+// drains in the order written on Trainer and returns nil. It returns an error
+// when the source or the checkpoint writer fails; the state up to the last
+// durable cut is safe either way.
+func (t *Trainer) Run(ctx context.Context) error {
+	go t.writer()
+	now := t.o.now()
+	t.lastFlush, t.lastSnap, t.lastOffer, t.lastProg, t.lastRefill, t.paceStart = now, now, now, now, now, now
+	t.lastProgEvents = t.counts.Applied
+	t.recallTok = t.o.RecallRate
+	if t.o.Resume != nil {
+		t.log.Info("resumed", zap.Stringer("position", t.o.Resume.Position),
+			zap.Uint64("events", t.counts.Applied), zap.Uint64("seq", t.seq),
+			zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
+	}
+
+	var runErr error
+	for {
+		if ctx.Err() != nil {
+			break
+		}
+		b, err := t.src.Next(ctx)
+		if err != nil {
+			if errors.Is(err, io.EOF) {
+				t.log.Info("source ended", zap.Stringer("position", t.pos))
+			} else if ctx.Err() == nil {
+				runErr = fmt.Errorf("read source: %w", err)
+			}
+			break
+		}
+		t.apply(b)
+		t.pos = b.Pos.Clone()
+		t.counts.Rejected += uint64(b.Rejected)
+		if err := t.afterBatch(ctx); err != nil {
+			runErr = err
+			break
+		}
+		t.pace(ctx)
+	}
+	return errors.Join(runErr, t.drain())
+}
+
+// drain makes the final cut durable, acknowledges it and stops the writer.
+func (t *Trainer) drain() error {
+	if t.writerErr() == nil {
+		t.flush()
+	}
+	close(t.jobs)
+	<-t.wdone
+	err := t.writerErr()
+	if err == nil {
+		// The context may be cancelled already: the commit gets its own
+		// short deadline.
+		ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+		err = t.ack(ctx)
+		cancel()
+	}
+	if p := t.o.Publisher; p != nil {
+		rs := t.rowSet()
+		t.m.TakeDirty(ConsumerPublish, rs)
+		p.Offer(rs, t.meta())
+	}
+	t.progress(t.o.now(), "stopped")
+	return err
+}
+
+// apply scores and learns every event of b, in order. Events are resolved and
+// their rows touched a group at a time, so the cache misses of a group
+// overlap; erasures close a group, so row reuse stays in event order.
+func (t *Trainer) apply(b *stream.Batch) {
+	evs := b.Events
+	for len(evs) > 0 {
+		n := 0
+		for n < len(evs) && n < touchGroup {
+			ev := &evs[n]
+			if ev.Kind != stream.Interaction {
+				break
+			}
+			g := &t.group[n]
+			g.ev = ev
+			g.ok = t.resolve(g)
+			if g.ok {
+				t.m.Touch(g.u, g.i)
+			}
+			n++
+		}
+		for j := 0; j < n; j++ {
+			if g := &t.group[j]; g.ok {
+				t.step(g)
+			}
+		}
+		if n < len(evs) && n < touchGroup {
+			t.erase(&evs[n])
+			n++
+		}
+		evs = evs[n:]
+	}
+}
+
+func (t *Trainer) resolve(g *groupEv) bool {
+	ev := g.ev
+	var err error
+	if g.u, g.newU, err = t.m.Intern(Users, ev.User, ev.Time); err != nil {
+		t.counts.Refused++
+		return false
+	}
+	if g.i, g.newI, err = t.m.Intern(Items, ev.Item, ev.Time); err != nil {
+		t.counts.Refused++
+		return false
+	}
+	return true
+}
+
+func (t *Trainer) step(g *groupEv) {
+	ev := g.ev
+	if ev.Time > t.time {
+		t.time = ev.Time
+	}
+	var alarm bool
+	if t.mode == Implicit && t.recallDue() {
+		// Test first: is the item in the user's top N before learning it?
+		t.scores = t.m.ScoresTo(t.scores, g.u)
+		if t.mon.ObserveHit(InTopN(t.scores, g.i, t.o.TopN)) {
+			alarm = true
+		}
+	}
+	pred, err := t.m.Step(g.u, g.i, ev.Value, ev.Time)
+	if err != nil {
+		t.counts.NonFinite++
+		t.log.Warn("step undone", zap.Error(err),
+			zap.Uint64("events", t.counts.Applied), zap.Int32("partition", ev.Partition), zap.Int64("offset", ev.Offset))
+		return
+	}
+	t.counts.Applied++
+	if t.mode == Explicit {
+		alarm = t.mon.ObserveRating(pred, ev.Value, g.newU, g.newI) || alarm
+	} else {
+		alarm = t.mon.ObservePositive(pred, g.newU, g.newI) || alarm
+	}
+	if alarm {
+		t.alarm()
+	}
+}
+
+func (t *Trainer) erase(ev *stream.Event) {
+	side, id := Users, ev.User
+	if ev.Kind == stream.EraseItem {
+		side, id = Items, ev.Item
+	}
+	found := t.m.Erase(side, id)
+	t.counts.Erased++
+	t.log.Info("erased", zap.Stringer("side", side), zap.Bool("found", found),
+		zap.Int32("partition", ev.Partition), zap.Int64("offset", ev.Offset))
+}
+
+func (t *Trainer) alarm() {
+	t.alarms++
+	st := t.mon.Status()
+	a := Alarm{Event: t.counts.Applied, Time: t.time, Status: st}
+	t.log.Info("drift alarm",
+		zap.Uint64("events", a.Event), zap.Int64("time", a.Time),
+		zap.Float64("rmse", st.RMSEFading), zap.Float64("recall", st.RecallFading),
+		zap.Float64("statistic", st.PHStat), zap.Uint64("ph_alarms", st.PHAlarms), zap.Uint64("adwin_alarms", st.ADWINAlarms))
+	if t.o.OnAlarm != nil {
+		t.o.OnAlarm(a)
+	}
+}
+
+// recallDue reports whether this event is sampled for a recall@N evaluation.
+func (t *Trainer) recallDue() bool {
+	if n := t.o.RecallEvery; n > 0 {
+		return (t.counts.Applied+t.counts.NonFinite)%uint64(n) == 0
+	}
+	if t.o.RecallRate > 0 && t.recallTok >= 1 {
+		t.recallTok--
+		return true
+	}
+	return false
+}
+
+// afterBatch runs the batch-boundary work: acknowledge durable cuts, take a
+// cut when due, advance a snapshot or full publish by one chunk, offer
+// changed rows to the publisher, log progress.
+func (t *Trainer) afterBatch(ctx context.Context) error {
+	if err := t.writerErr(); err != nil {
+		return err
+	}
+	if err := t.ack(ctx); err != nil {
+		return err
+	}
+	now := t.o.now()
+	if el := now.Sub(t.lastRefill); el > 0 {
+		t.recallTok = min(t.recallTok+el.Seconds()*t.o.RecallRate, t.o.RecallRate)
+		t.lastRefill = now
+	}
+
+	if now.Sub(t.lastFlush) >= t.o.FlushInterval || t.m.DirtyLen(ConsumerLog) >= t.o.FlushRows {
+		t.flush()
+	}
+
+	start := t.o.now()
+	t.snapshotStep(now)
+	t.publishStep(now)
+	if d := t.o.now().Sub(start); d > t.stallMax {
+		t.stallMax = d
+	}
+
+	if now.Sub(t.lastProg) >= t.o.Progress {
+		t.progress(now, "progress")
+	}
+	if t.o.Curve != nil && t.counts.Applied >= t.nextCurve {
+		t.o.Curve(t.counts, t.mon.Status())
+		t.nextCurve = (t.counts.Applied/t.o.CurveEvery + 1) * t.o.CurveEvery
+	}
+	return nil
+}
+
+// flush takes a cut: the rows changed since the previous cut and the meta of
+// this batch boundary, handed to the writer (blocking when it is behind, which
+// is the back-pressure that keeps the log bounded).
+func (t *Trainer) flush() {
+	t.lastFlush = t.o.now()
+	if t.flushedAny && t.m.DirtyLen(ConsumerLog) == 0 && positionEqual(t.pos, t.flushedPos) && t.seq == t.lastFlushSeq {
+		return // nothing new since the last cut
+	}
+	rs := t.rowSet()
+	t.m.TakeDirty(ConsumerLog, rs)
+	t.seq++
+	meta := t.meta()
+	t.flushedPos, t.flushedAny, t.lastFlushSeq = t.pos.Clone(), true, t.seq
+	t.jobs <- job{kind: jobAppend, rows: rs, meta: meta}
+}
+
+// snapshotStep starts a snapshot when one is due and copies the next chunk of
+// an ongoing one, if the writer has room (the trainer never waits for it).
+func (t *Trainer) snapshotStep(now time.Time) {
+	if !t.snap.on {
+		if t.o.SnapshotInterval < 0 || now.Sub(t.lastSnap) < t.o.SnapshotInterval {
+			return
+		}
+		t.lastSnap = now
+		t.snap = cursor{on: true}
+		t.jobs <- job{kind: jobBegin, meta: t.meta()}
+		t.log.Info("snapshot started", zap.Uint64("seq", t.seq), zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
+		return
+	}
+	if len(t.jobs) == cap(t.jobs) {
+		return // the writer is behind; try again at the next boundary
+	}
+	if rs, done := t.copyChunk(&t.snap); rs != nil {
+		t.jobs <- job{kind: jobRows, rows: rs}
+	} else if done {
+		// The last chunk is queued: one more cut, and the snapshot is
+		// complete at that cut's meta.
+		t.snap.on = false
+		t.seq++ // a new cut even when nothing changed, so Commit has a meta of its own
+		rs := t.rowSet()
+		t.m.TakeDirty(ConsumerLog, rs)
+		meta := t.meta()
+		t.flushedPos, t.flushedAny, t.lastFlushSeq, t.lastFlush = t.pos.Clone(), true, t.seq, t.o.now()
+		t.jobs <- job{kind: jobAppend, rows: rs, meta: meta}
+		t.jobs <- job{kind: jobCommit, meta: meta}
+	}
+}
+
+// publishStep offers changed rows to the publisher on its interval and runs a
+// full publish chunk by chunk when the publisher asks for one.
+func (t *Trainer) publishStep(now time.Time) {
+	p := t.o.Publisher
+	if p == nil {
+		return
+	}
+	if !t.full.on && p.WantFull() {
+		t.full = cursor{on: true}
+		t.log.Info("full publish started", zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
+	}
+	if t.full.on {
+		if rs, done := t.copyChunk(&t.full); rs != nil {
+			p.OfferFull(rs)
+		} else if done {
+			t.full.on = false
+			// Rows changed during the full publish follow through Offer
+			// before EndFull, so the new version holds them before it goes
+			// live.
+			rs := t.rowSet()
+			t.m.TakeDirty(ConsumerPublish, rs)
+			meta := t.meta()
+			p.Offer(rs, meta)
+			p.EndFull(meta)
+			t.lastOffer = now
+			return
+		}
+	}
+	if now.Sub(t.lastOffer) >= t.o.OfferInterval {
+		t.lastOffer = now
+		rs := t.rowSet()
+		t.m.TakeDirty(ConsumerPublish, rs)
+		p.Offer(rs, t.meta())
+	}
+}
+
+// copyChunk copies the next SnapshotChunk rows under c. It returns nil and
+// done=true once both sides are covered.
+func (t *Trainer) copyChunk(c *cursor) (rs *RowSet, done bool) {
+	for c.side <= Items {
+		end := t.m.Rows(c.side)
+		if c.row >= end {
+			c.side++
+			c.row = 0
+			continue
+		}
+		to := min(c.row+int32(t.o.SnapshotChunk), end)
+		rs = t.rowSet()
+		t.m.CopyRows(c.side, c.row, to, rs)
+		c.row = to
+		return rs, false
+	}
+	return nil, true
+}
+
+// rowSet returns a recycled RowSet (or a new one).
+func (t *Trainer) rowSet() *RowSet {
+	var rs *RowSet
+	select {
+	case rs = <-t.free:
+	default:
+		rs = new(RowSet)
+	}
+	rs.Reset(t.m.Rank())
+	return rs
+}
+
+// meta returns the meta of the current batch boundary.
+func (t *Trainer) meta() *Meta {
+	mon, err := t.mon.MarshalState()
+	if err != nil {
+		// MarshalState encodes plain numbers; failing is a bug.
+		panic(fmt.Sprintf("online: marshal monitor state: %v", err))
+	}
+	return &Meta{
+		Format:   MetaFormat,
+		Rank:     t.m.Rank(),
+		Mode:     t.mode.String(),
+		Seq:      t.seq,
+		Position: t.pos.Clone(),
+		Time:     t.time,
+		Counts:   t.counts,
+		Model:    t.m.Meta(),
+		Monitor:  mon,
+	}
+}
+
+// writer is the checkpoint writer goroutine: it makes each job durable in
+// order and records the newest durable cut for ack.
+func (t *Trainer) writer() {
+	defer close(t.wdone)
+	cp := t.o.Checkpoint
+	for j := range t.jobs {
+		if t.writerErr() != nil {
+			continue // drain the queue after a failure
+		}
+		var err error
+		switch j.kind {
+		case jobAppend:
+			err = cp.Append(j.rows, j.meta)
+		case jobBegin:
+			err = cp.BeginSnapshot(j.meta)
+		case jobRows:
+			err = cp.WriteRows(j.rows)
+		case jobCommit:
+			start := time.Now()
+			err = cp.Commit(j.meta)
+			if err == nil {
+				t.log.Info("snapshot written", zap.Uint64("seq", j.meta.Seq), zap.Duration("duration", time.Since(start)))
+			}
+		}
+		if j.rows != nil {
+			select {
+			case t.free <- j.rows:
+			default:
+			}
+		}
+		t.ackMu.Lock()
+		if err != nil {
+			t.werr = fmt.Errorf("checkpoint: %w", err)
+		} else if j.kind == jobAppend {
+			t.acked = j.meta
+		}
+		t.ackMu.Unlock()
+	}
+}
+
+func (t *Trainer) writerErr() error {
+	t.ackMu.Lock()
+	defer t.ackMu.Unlock()
+	return t.werr
+}
+
+// ack acknowledges the newest durable cut to the source.
+func (t *Trainer) ack(ctx context.Context) error {
+	t.ackMu.Lock()
+	m := t.acked
+	t.acked = nil
+	t.ackMu.Unlock()
+	if m == nil {
+		return nil
+	}
+	if err := t.src.Commit(ctx, m.Position); err != nil {
+		if ctx.Err() != nil {
+			return nil
+		}
+		return fmt.Errorf("commit %s: %w", m.Position, err)
+	}
+	t.commits++
+	return nil
+}
+
+// pace sleeps so the stream runs at no more than MaxRate events per second.
+func (t *Trainer) pace(ctx context.Context) {
+	if t.o.MaxRate <= 0 {
+		return
+	}
+	t.paceEvents = t.counts.Applied - t.startApplied
+	due := t.paceStart.Add(time.Duration(float64(t.paceEvents) / t.o.MaxRate * float64(time.Second)))
+	if d := due.Sub(t.o.now()); d > 0 {
+		timer := time.NewTimer(d)
+		select {
+		case <-timer.C:
+		case <-ctx.Done():
+			timer.Stop()
+		}
+	}
+}
+
+// progress logs one line: the periodic report (msg "progress") or the last
+// one ("stopped").
+func (t *Trainer) progress(now time.Time, msg string) {
+	el := now.Sub(t.lastProg).Seconds()
+	if msg == "stopped" {
+		el = now.Sub(t.paceStart).Seconds() // the whole run's average
+		t.lastProgEvents = t.startApplied
+	}
+	rate := 0.0
+	if el > 0 {
+		rate = float64(t.counts.Applied-t.lastProgEvents) / el
+	}
+	t.lastProg, t.lastProgEvents = now, t.counts.Applied
+	st := t.mon.Status()
+	fields := []zap.Field{
+		zap.Uint64("events", t.counts.Applied),
+		zap.Float64("events_per_s", rate),
+		zap.Int("users", t.m.Live(Users)),
+		zap.Int("items", t.m.Live(Items)),
+	}
+	if t.mode == Explicit {
+		fields = append(fields, zap.Float64("rmse", st.RMSEFading), zap.Float64("mae", st.MAEFading),
+			zap.Float64("rmse_window", st.RMSEWindow))
+	} else {
+		fields = append(fields, zap.Float64("recall", st.RecallFading), zap.Float64("recall_window", st.RecallWindow))
+	}
+	fields = append(fields,
+		zap.Float64("cold_share", st.ColdEitherShare),
+		zap.Uint64("drift_alarms", t.alarms),
+		zap.Uint64("rejected", t.counts.Rejected),
+		zap.Uint64("refused", t.counts.Refused),
+		zap.Uint64("non_finite", t.counts.NonFinite),
+		zap.Uint64("seq", t.seq),
+		zap.Duration("stall_max", t.stallMax),
+		zap.Stringer("position", t.pos),
+	)
+	if l, ok := t.src.(interface{ LagSummary() string }); ok {
+		fields = append(fields, zap.String("lag", l.LagSummary()))
+	}
+	t.stallMax = 0
+	t.log.Info(msg, fields...)
+}
+
+// Counts returns the running totals (call after Run returns, or from the
+// trainer goroutine).
+func (t *Trainer) Counts() Counts { return t.counts }
+
+// Position returns the position after the last batch applied.
+func (t *Trainer) Position() stream.Position { return t.pos.Clone() }
+
+func positionEqual(a, b stream.Position) bool {
+	if a.Source != b.Source || a.Path != b.Path || a.Topic != b.Topic || a.Seed != b.Seed ||
+		a.Offset != b.Offset || a.Line != b.Line || len(a.Partitions) != len(b.Partitions) {
+		return false
+	}
+	for i := range a.Partitions {
+		if a.Partitions[i] != b.Partitions[i] {
+			return false
+		}
+	}
+	return true
+}
