@@ -23,9 +23,9 @@ import (
 type memCheckpoint struct{}
 
 func (memCheckpoint) Append(*online.RowSet, *online.Meta) error { return nil }
-func (memCheckpoint) BeginSnapshot(*online.Meta) error         { return nil }
-func (memCheckpoint) WriteRows(*online.RowSet) error           { return nil }
-func (memCheckpoint) Commit(*online.Meta) error                { return nil }
+func (memCheckpoint) BeginSnapshot(*online.Meta) error          { return nil }
+func (memCheckpoint) WriteRows(*online.RowSet) error            { return nil }
+func (memCheckpoint) Commit(*online.Meta) error                 { return nil }
 
 // runReplay evaluates a file offline, test-then-train, and prints a summary;
 // with -curve it writes the prequential curve as CSV.
