@@ -191,6 +191,26 @@ func (a *applier) run(until int, timeout time.Duration) {
 	}
 }
 
+// step applies one batch (possibly empty) and commits.
+func (a *applier) step() {
+	a.tb.Helper()
+	ctx, cancel := context.WithTimeout(context.Background(), 5*time.Second)
+	defer cancel()
+	b, err := a.src.Next(ctx)
+	if err != nil {
+		a.tb.Fatal(err)
+	}
+	for i := range b.Events {
+		a.seen.add(b.Events[i].Partition, b.Events[i].Offset)
+	}
+	a.events += b.Len()
+	a.rejected += b.Rejected
+	a.last = b.Pos.Clone()
+	if err := a.src.Commit(ctx, b.Pos); err != nil {
+		a.tb.Fatal(err)
+	}
+}
+
 // settle commits the latest position until the group's offsets reach the end
 // offsets (dead-letter acknowledgements can hold them back briefly).
 func (a *applier) settle(o Options, want map[int]int64) {

@@ -175,8 +175,7 @@ func TestRebalance(t *testing.T) {
 	o := testOptions(t, broker, parts)
 	o.Shared = true
 	mustEnsure(t, o)
-	produce(t, o, n)
-	ends := endOffsets(t, o)
+	produce(t, o, n/2) // the second half once both sources hold partitions
 
 	srcA := mustNew(t, o, stream.Position{})
 	defer srcA.Close()
@@ -194,6 +193,7 @@ func TestRebalance(t *testing.T) {
 	// applying (its Next drives nothing of the group, but its workers must
 	// not block the generation from ending).
 	srcB := mustNew(t, o, stream.Position{})
+	defer srcB.Close()
 	b := newApplier(t, srcB)
 	var wg sync.WaitGroup
 	stop := make(chan struct{})
@@ -223,6 +223,21 @@ func TestRebalance(t *testing.T) {
 			}
 		}
 	}()
+	// Wait for the rebalance, then produce the second half, so B surely has
+	// records to read however far A got.
+	for deadline := time.Now().Add(30 * time.Second); ; {
+		_, pa := srcA.Assignment()
+		_, pb := srcB.Assignment()
+		if len(pb) > 0 && len(pa)+len(pb) == parts {
+			break
+		}
+		if time.Now().After(deadline) {
+			t.Fatalf("no rebalance: A holds %v, B holds %v", pa, pb)
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
+	produce(t, o, n/2)
+	ends := endOffsets(t, o)
 	b.run(3000, time.Minute)
 	_, partsB := srcB.Assignment()
 	close(stop)
@@ -260,9 +275,9 @@ func TestRebalance(t *testing.T) {
 			break
 		}
 		if time.Now().After(deadline) {
-			t.Fatalf("A did not reach the end offsets %v: holds %v at %s", ends, held, pos)
+			t.Fatalf("A did not reach the end offsets %v: holds %v at %s; lag %+v; stats %+v", ends, held, pos, srcA.Lag(), srcA.Stats())
 		}
-		a.run(a.events+a.rejected+1, time.Minute)
+		a.step()
 	}
 
 	// A late commit from B, for a position it read before it left (ahead of
