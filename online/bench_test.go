@@ -33,19 +33,20 @@ type benchEvent struct {
 	v    float64
 }
 
-func benchEvents(nu, ni int) []benchEvent {
-	r := rand.New(rand.NewPCG(3, 4))
-	ev := make([]benchEvent, 1<<16)
-	for j := range ev {
-		ev[j] = benchEvent{int32(r.IntN(nu)), int32(r.IntN(ni)), float64(1 + r.IntN(5))}
+// benchGroup fills g with random events; drawing them costs the same in
+// every variant, and random rows stay random however long the run.
+func benchGroup(r *rand.PCG, g *[16]benchEvent, nu, ni int) {
+	for j := range g {
+		x := r.Uint64()
+		g[j] = benchEvent{int32((x >> 32) % uint64(nu)), int32((x & 0xffffffff) % uint64(ni)), float64(1 + x>>61)}
 	}
-	return ev
 }
 
 // BenchmarkStep measures one explicit SGD step at rank k with tables in
 // cache (1k × 1k) and out of cache (2M users × 200k items, random rows), for
 // the reference loops, the fast kernels, and the fast kernels with the rows
-// of each group of 16 events touched before the group is stepped.
+// of the next group of 16 events touched before the current group is
+// stepped (as the trainer does with a batch).
 func BenchmarkStep(b *testing.B) {
 	for _, k := range []int{16, 32, 64, 128} {
 		b.Run(fmt.Sprintf("k=%d", k), func(b *testing.B) {
@@ -58,7 +59,6 @@ func BenchmarkStep(b *testing.B) {
 						b.Skip("big tables skipped in -short")
 					}
 					m := benchModel(b, k, size.nu, size.ni)
-					ev := benchEvents(size.nu, size.ni)
 					for _, v := range []struct {
 						name  string
 						kern  kernels
@@ -66,20 +66,26 @@ func BenchmarkStep(b *testing.B) {
 					}{{"ref", refKernels, false}, {"fast", fastKernels, false}, {"fast+touch", fastKernels, true}} {
 						b.Run(v.name, func(b *testing.B) {
 							m.kern = v.kern
+							r := rand.NewPCG(3, 4)
+							var cur, next [16]benchEvent
+							benchGroup(r, &cur, size.nu, size.ni)
 							b.ResetTimer()
 							n := 0
 							for n < b.N {
-								base := n & (len(ev) - 1) &^ 15
+								// Draw the next group; with touch, start its
+								// loads before stepping the current group.
+								benchGroup(r, &next, size.nu, size.ni)
 								if v.touch {
-									for _, e := range ev[base : base+16] {
+									for _, e := range next {
 										m.Touch(e.u, e.i)
 									}
 								}
-								for _, e := range ev[base : base+16] {
+								for _, e := range cur {
 									if _, err := m.Step(e.u, e.i, e.v, 0); err != nil {
 										b.Fatal(err)
 									}
 								}
+								cur = next
 								n += 16
 							}
 							b.ReportMetric(float64(n)/b.Elapsed().Seconds(), "events/s")

@@ -686,3 +686,53 @@ func TestScoresTo(t *testing.T) {
 		}
 	}
 }
+
+// TestLearnsToNoiseFloor streams ratings r = 3.5 + p·q + ε from planted
+// rank-8 factors with ε ~ N(0, 0.5²). No predictor beats RMSE σ in
+// expectation (noise floor, common practice; REFERENCES.md), and a model
+// that has learned the planted factors sits just above it: the prequential
+// RMSE of the last 200k of 1M events must be within 10% of σ.
+func TestLearnsToNoiseFloor(t *testing.T) {
+	const k, nu, ni, sigma = 8, 1000, 200, 0.5
+	r := rand.New(rand.NewPCG(1, 1))
+	planted := func(n int) [][]float64 {
+		v := make([][]float64, n)
+		for j := range v {
+			v[j] = make([]float64, k)
+			for f := range v[j] {
+				v[j][f] = r.NormFloat64() / math.Sqrt(math.Sqrt(k)) // p·q has variance 1
+			}
+		}
+		return v
+	}
+	P, Q := planted(nu), planted(ni)
+	m := newModel(t, Options{Rank: k, MinValue: -20, MaxValue: 30, Seed: 11,
+		LearnRate: 0.02, BiasLearnRate: 0.01, Reg: 0.01, BiasReg: 0.01})
+	for u := range nu {
+		intern(t, m, Users, fmt.Sprint("listener-", u))
+	}
+	for i := range ni {
+		intern(t, m, Items, fmt.Sprint("show-", i))
+	}
+	var se float64
+	const events, window = 1_000_000, 200_000
+	for e := 0; e < events; e++ {
+		u, i := r.IntN(nu), r.IntN(ni)
+		v := 3.5 + sigma*r.NormFloat64()
+		for f := range k {
+			v += P[u][f] * Q[i][f]
+		}
+		pred, err := m.Step(int32(u), int32(i), v, int64(e))
+		if err != nil {
+			t.Fatal(err)
+		}
+		if e >= events-window {
+			se += (v - pred) * (v - pred)
+		}
+	}
+	rmse := math.Sqrt(se / window)
+	t.Logf("late-window prequential RMSE %.4f, σ = %.2f", rmse, sigma)
+	if rmse < sigma*0.95 || rmse > sigma*1.10 {
+		t.Fatalf("late-window RMSE %.4f not within [−5%%, +10%%] of σ = %.2f", rmse, sigma)
+	}
+}

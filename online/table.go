@@ -1,6 +1,9 @@
 package online
 
-import "math"
+import (
+	"math"
+	"unsafe"
+)
 
 // Rows live in chunks of chunkRows rows per side. Growth adds a chunk and never
 // copies, so a row keeps its address for the life of the Model.
@@ -57,12 +60,22 @@ func (t *table) isLive(r int32) bool {
 // change next.
 func (t *table) grow(n int32) {
 	for int32(len(t.vec))*chunkRows < n {
-		v := t.maps.floats(chunkRows * t.k)
-		if v == nil {
+		// One mapping holds a chunk's factors and then its metadata
+		// (pointer-free, 8-byte aligned since the factors take a multiple of
+		// 64 KiB), so both get huge pages.
+		vb := uintptr(chunkRows*t.k) * 4
+		mb := uintptr(chunkRows) * unsafe.Sizeof(rowMeta{})
+		var v []float32
+		var md []rowMeta
+		if p := t.maps.alloc(vb + mb); p != nil {
+			v = unsafe.Slice((*float32)(p), chunkRows*t.k)
+			md = unsafe.Slice((*rowMeta)(unsafe.Add(p, vb)), chunkRows)
+		} else {
 			v = make([]float32, chunkRows*t.k)
+			md = make([]rowMeta, chunkRows)
 		}
 		t.vec = append(t.vec, v)
-		t.meta = append(t.meta, make([]rowMeta, chunkRows))
+		t.meta = append(t.meta, md)
 	}
 }
 

@@ -21,25 +21,39 @@ type mappings struct {
 // useMmap turns mapped chunks on; tests may turn it off to cover the fallback.
 var useMmap = true
 
-// floats returns n zeroed float32s from a private anonymous mapping advised
+// alloc returns size zeroed bytes from a private anonymous mapping advised
 // for transparent huge pages (fewer TLB misses when steps touch random rows
-// of large tables), or nil if mapping is off or fails.
-func (ms *mappings) floats(n int) []float32 {
-	if ms == nil || ms.off || !useMmap || n == 0 {
+// of large tables), or nil if mapping is off or fails. The memory must hold
+// no Go pointers.
+func (ms *mappings) alloc(size uintptr) unsafe.Pointer {
+	if ms == nil || ms.off || !useMmap || size == 0 {
 		return nil
 	}
-	size := uintptr(n) * 4
-	p, err := unix.MmapPtr(-1, 0, nil, size, unix.PROT_READ|unix.PROT_WRITE, unix.MAP_PRIVATE|unix.MAP_ANONYMOUS)
+	// Map one huge page more than needed and trim to a 2 MiB boundary: a
+	// huge page needs an aligned 2 MiB range inside the mapping, and the
+	// kernel does not promise to align anonymous mappings.
+	const huge = 2 << 20
+	span := size + huge
+	base, err := unix.MmapPtr(-1, 0, nil, span, unix.PROT_READ|unix.PROT_WRITE, unix.MAP_PRIVATE|unix.MAP_ANONYMOUS)
 	if err != nil {
 		ms.off = true
 		return nil
+	}
+	start := (uintptr(base) + huge - 1) &^ (huge - 1)
+	head := start - uintptr(base)
+	if head > 0 {
+		_ = unix.MunmapPtr(base, head)
+	}
+	p := unsafe.Add(base, head)
+	if tail := span - head - size; tail > 0 {
+		_ = unix.MunmapPtr(unsafe.Add(p, size), tail)
 	}
 	// Advice only: a kernel without transparent huge pages refuses it and
 	// the mapping still works with normal pages.
 	_ = unix.Madvise(unsafe.Slice((*byte)(p), size), unix.MADV_HUGEPAGE)
 	ms.ptrs = append(ms.ptrs, p)
 	ms.sizes = append(ms.sizes, size)
-	return unsafe.Slice((*float32)(p), n)
+	return p
 }
 
 // release unmaps everything.
