@@ -6,6 +6,7 @@ import (
 	"fmt"
 	"io"
 	"sync"
+	"sync/atomic"
 	"time"
 
 	"go.uber.org/zap"
@@ -72,6 +73,9 @@ type TrainerOptions struct {
 	MaxRate float64
 	// OnAlarm, when set, is called for each drift alarm (after it is logged).
 	OnAlarm func(Alarm)
+	// OnSnapshot, when set, is called by the checkpoint writer goroutine
+	// after each snapshot is committed.
+	OnSnapshot func(SnapshotStats)
 	// Curve, when set, is called at the first batch boundary after every
 	// CurveEvery applied events (default 1000), for prequential curves.
 	Curve      func(Counts, MonitorStatus)
@@ -86,6 +90,20 @@ type Alarm struct {
 	Event  uint64 // index of the event (Counts.Applied after it)
 	Time   int64  // model time (ms)
 	Status MonitorStatus
+}
+
+// SnapshotStats describe one full snapshot.
+type SnapshotStats struct {
+	Seq    uint64 // the cut the snapshot is complete at
+	Rows   int    // live rows written
+	Chunks int    // chunks copied, one per batch boundary at most
+	// CopyTime is the trainer's time spent copying rows, summed over the
+	// chunks; StallMax is the longest any one batch boundary spent on
+	// snapshot work (copy and hand-off): the pause the trainer saw.
+	CopyTime time.Duration
+	StallMax time.Duration
+	// Took is the wall time from the start of the snapshot to its commit.
+	Took time.Duration
 }
 
 // Trainer owns the model's tables and drives them from a Source: for each
@@ -119,13 +137,17 @@ type Trainer struct {
 	counts Counts
 
 	// writer hand-off
-	jobs    chan job
-	free    chan *RowSet
-	wdone   chan struct{}
-	ackMu   sync.Mutex
-	acked   *Meta // newest durable cut not yet acknowledged to the source
-	werr    error
-	commits uint64
+	jobs  chan job
+	free  chan *RowSet
+	wdone chan struct{}
+	// queued jobs by kind, so that log cuts and snapshot chunks share the
+	// writer without starving each other
+	pendingAppends atomic.Int32
+	pendingChunks  atomic.Int32
+	ackMu          sync.Mutex
+	acked          *Meta // newest durable cut not yet acknowledged to the source
+	werr           error
+	commits        uint64
 
 	// cut bookkeeping
 	lastFlush    time.Time
@@ -135,6 +157,8 @@ type Trainer struct {
 
 	// snapshot and full-publish cursors
 	snap      cursor
+	snapStats SnapshotStats
+	snapStart time.Time
 	lastSnap  time.Time
 	full      cursor
 	lastOffer time.Time
@@ -185,9 +209,11 @@ const (
 )
 
 type job struct {
-	kind jobKind
-	rows *RowSet
-	meta *Meta
+	kind  jobKind
+	rows  *RowSet
+	meta  *Meta
+	stats SnapshotStats // jobCommit
+	start time.Time     // jobCommit: when the snapshot began
 }
 
 // NewTrainer checks o and returns a Trainer ready to Run.
@@ -237,7 +263,7 @@ func NewTrainer(o TrainerOptions) (*Trainer, error) {
 		mon:   o.Monitor,
 		src:   o.Source,
 		log:   o.Logger,
-		jobs:  make(chan job, 4),
+		jobs:  make(chan job, 8),
 		free:  make(chan *RowSet, 8),
 		wdone: make(chan struct{}),
 	}
@@ -301,7 +327,7 @@ func (t *Trainer) Run(ctx context.Context) error {
 // drain makes the final cut durable, acknowledges it and stops the writer.
 func (t *Trainer) drain() error {
 	if t.writerErr() == nil {
-		t.flush()
+		t.flush(true)
 	}
 	close(t.jobs)
 	<-t.wdone
@@ -452,8 +478,10 @@ func (t *Trainer) afterBatch(ctx context.Context) error {
 		t.lastRefill = now
 	}
 
-	if now.Sub(t.lastFlush) >= t.o.FlushInterval || t.m.DirtyLen(ConsumerLog) >= t.o.FlushRows {
-		t.flush()
+	if t.m.DirtyLen(ConsumerLog) >= t.o.FlushRows {
+		t.flush(true)
+	} else if now.Sub(t.lastFlush) >= t.o.FlushInterval {
+		t.flush(false)
 	}
 
 	start := t.o.now()
@@ -474,9 +502,14 @@ func (t *Trainer) afterBatch(ctx context.Context) error {
 }
 
 // flush takes a cut: the rows changed since the previous cut and the meta of
-// this batch boundary, handed to the writer (blocking when it is behind, which
-// is the back-pressure that keeps the log bounded).
-func (t *Trainer) flush() {
+// this batch boundary, handed to the writer. A routine cut is postponed to a
+// later boundary while an earlier one is still queued (the next cut covers
+// both); a forced one (too many dirty rows, or the drain) blocks when the
+// writer is behind, which is the back-pressure that keeps memory bounded.
+func (t *Trainer) flush(force bool) {
+	if !force && t.pendingAppends.Load() > 0 {
+		return
+	}
 	t.lastFlush = t.o.now()
 	if t.flushedAny && t.m.DirtyLen(ConsumerLog) == 0 && positionEqual(t.pos, t.flushedPos) && t.seq == t.lastFlushSeq {
 		return // nothing new since the last cut
@@ -486,11 +519,24 @@ func (t *Trainer) flush() {
 	t.seq++
 	meta := t.meta()
 	t.flushedPos, t.flushedAny, t.lastFlushSeq = t.pos.Clone(), true, t.seq
-	t.jobs <- job{kind: jobAppend, rows: rs, meta: meta}
+	t.send(job{kind: jobAppend, rows: rs, meta: meta})
+}
+
+// send queues j for the writer, counting it by kind.
+func (t *Trainer) send(j job) {
+	switch j.kind {
+	case jobAppend:
+		t.pendingAppends.Add(1)
+	case jobRows:
+		t.pendingChunks.Add(1)
+	}
+	t.jobs <- j
 }
 
 // snapshotStep starts a snapshot when one is due and copies the next chunk of
-// an ongoing one, if the writer has room (the trainer never waits for it).
+// an ongoing one while fewer than two chunks are queued: the trainer never
+// waits on the disk for a snapshot, and at most two chunks of copies are in
+// memory at once.
 func (t *Trainer) snapshotStep(now time.Time) {
 	if !t.snap.on {
 		if t.o.SnapshotInterval < 0 || now.Sub(t.lastSnap) < t.o.SnapshotInterval {
@@ -498,26 +544,37 @@ func (t *Trainer) snapshotStep(now time.Time) {
 		}
 		t.lastSnap = now
 		t.snap = cursor{on: true}
+		t.snapStats = SnapshotStats{}
+		t.snapStart = now
 		t.jobs <- job{kind: jobBegin, meta: t.meta()}
 		t.log.Info("snapshot started", zap.Uint64("seq", t.seq), zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
 		return
 	}
-	if len(t.jobs) == cap(t.jobs) {
+	if t.pendingChunks.Load() >= 2 {
 		return // the writer is behind; try again at the next boundary
 	}
-	if rs, done := t.copyChunk(&t.snap); rs != nil {
-		t.jobs <- job{kind: jobRows, rows: rs}
+	start := t.o.now()
+	rs, done := t.copyChunk(&t.snap)
+	if rs != nil {
+		t.snapStats.Chunks++
+		t.snapStats.Rows += rs.Len()
+		t.snapStats.CopyTime += t.o.now().Sub(start)
+		t.send(job{kind: jobRows, rows: rs})
 	} else if done {
 		// The last chunk is queued: one more cut, and the snapshot is
 		// complete at that cut's meta.
 		t.snap.on = false
-		t.seq++ // a new cut even when nothing changed, so Commit has a meta of its own
+		t.seq++ // a cut of its own even when nothing changed
 		rs := t.rowSet()
 		t.m.TakeDirty(ConsumerLog, rs)
 		meta := t.meta()
 		t.flushedPos, t.flushedAny, t.lastFlushSeq, t.lastFlush = t.pos.Clone(), true, t.seq, t.o.now()
-		t.jobs <- job{kind: jobAppend, rows: rs, meta: meta}
-		t.jobs <- job{kind: jobCommit, meta: meta}
+		t.snapStats.Seq = meta.Seq
+		t.send(job{kind: jobAppend, rows: rs, meta: meta})
+		t.send(job{kind: jobCommit, meta: meta, stats: t.snapStats, start: t.snapStart})
+	}
+	if d := t.o.now().Sub(start); d > t.snapStats.StallMax {
+		t.snapStats.StallMax = d
 	}
 }
 
@@ -626,11 +683,23 @@ func (t *Trainer) writer() {
 		case jobRows:
 			err = cp.WriteRows(j.rows)
 		case jobCommit:
-			start := time.Now()
 			err = cp.Commit(j.meta)
 			if err == nil {
-				t.log.Info("snapshot written", zap.Uint64("seq", j.meta.Seq), zap.Duration("duration", time.Since(start)))
+				st := j.stats
+				st.Took = t.o.now().Sub(j.start)
+				t.log.Info("snapshot written", zap.Uint64("seq", st.Seq), zap.Int("rows", st.Rows),
+					zap.Int("chunks", st.Chunks), zap.Duration("copy", st.CopyTime),
+					zap.Duration("stall_max", st.StallMax), zap.Duration("duration", st.Took))
+				if t.o.OnSnapshot != nil {
+					t.o.OnSnapshot(st)
+				}
 			}
+		}
+		switch j.kind {
+		case jobAppend:
+			t.pendingAppends.Add(-1)
+		case jobRows:
+			t.pendingChunks.Add(-1)
 		}
 		if j.rows != nil {
 			select {

@@ -1,0 +1,313 @@
+package online_test
+
+import (
+	"bytes"
+	"context"
+	"fmt"
+	"io"
+	"math"
+	"math/rand/v2"
+	"runtime"
+	"sync"
+	"sync/atomic"
+	"testing"
+	"time"
+
+	"go.uber.org/zap/zaptest"
+
+	"freshet.dev/freshet/online"
+	"freshet.dev/freshet/sink/checkpoint"
+	"freshet.dev/freshet/stream"
+)
+
+// ackCheck wraps a source and fails the test if a position is committed
+// before a cut holding it was durable.
+type ackCheck struct {
+	stream.Source
+	t       *testing.T
+	mu      sync.Mutex
+	durable map[int64]bool // scenario offsets whose cut's Append returned
+	commits []int64
+}
+
+func (a *ackCheck) Commit(ctx context.Context, p stream.Position) error {
+	a.mu.Lock()
+	defer a.mu.Unlock()
+	if !a.durable[p.Offset] {
+		a.t.Errorf("commit of offset %d before its cut was durable", p.Offset)
+	}
+	if n := len(a.commits); n > 0 && p.Offset < a.commits[n-1] {
+		a.t.Errorf("commit went backwards: %d after %d", p.Offset, a.commits[n-1])
+	}
+	a.commits = append(a.commits, p.Offset)
+	return a.Source.Commit(ctx, p)
+}
+
+// durableStore records which positions are durable after Append returns.
+type durableStore struct {
+	*checkpoint.Store
+	ack      *ackCheck
+	appends  atomic.Int64
+	commits  atomic.Int64
+	lastSeq  atomic.Uint64
+	commitOK atomic.Bool
+}
+
+func (d *durableStore) Append(rows *online.RowSet, meta *online.Meta) error {
+	if err := d.Store.Append(rows, meta); err != nil {
+		return err
+	}
+	d.appends.Add(1)
+	d.lastSeq.Store(meta.Seq)
+	d.ack.mu.Lock()
+	d.ack.durable[meta.Position.Offset] = true
+	d.ack.mu.Unlock()
+	return nil
+}
+
+func (d *durableStore) Commit(meta *online.Meta) error {
+	if meta.Seq != d.lastSeq.Load() {
+		return fmt.Errorf("commit at seq %d, last append %d", meta.Seq, d.lastSeq.Load())
+	}
+	d.commits.Add(1)
+	return d.Store.Commit(meta)
+}
+
+func newPair(t testing.TB, rank int) (*online.Model, *online.Monitor) {
+	t.Helper()
+	m, err := online.New(online.Options{Rank: rank, Seed: 7})
+	if err != nil {
+		t.Fatal(err)
+	}
+	mon, err := online.NewMonitor(online.MonitorOptions{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	return m, mon
+}
+
+// TestTrainerRecoversExactly runs the trainer on a finite scenario with a
+// real checkpoint store, snapshots taken in chunks of 200 rows (so each
+// snapshot spans many batches while rows keep changing), then recovers the
+// directory into a fresh model: every row, bias and count must equal the live
+// model's bit for bit, and the monitor state must match.
+func TestTrainerRecoversExactly(t *testing.T) {
+	const events = 100000
+	dir := t.TempDir()
+	sc, err := stream.NewScenario(stream.ScenarioOptions{Seed: 3, Events: events, Listeners: 2000, Shows: 300,
+		ClipMin: 1, ClipMax: 5, Mean: 3}, stream.Position{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	store, err := checkpoint.Open(checkpoint.Options{Dir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, mon := newPair(t, 8)
+	if _, _, err := store.Recover(m.ApplyRecord); err != nil {
+		t.Fatal(err)
+	}
+	ack := &ackCheck{Source: sc, t: t, durable: map[int64]bool{}}
+	ds := &durableStore{Store: store, ack: ack}
+	var snaps []online.SnapshotStats
+	var snapMu sync.Mutex
+	tr, err := online.NewTrainer(online.TrainerOptions{
+		Model: m, Monitor: mon, Source: ack, Checkpoint: ds,
+		FlushInterval: time.Millisecond, SnapshotInterval: time.Millisecond, SnapshotChunk: 200,
+		Progress: -1, Logger: zaptest.NewLogger(t),
+		OnSnapshot: func(s online.SnapshotStats) {
+			snapMu.Lock()
+			snaps = append(snaps, s)
+			snapMu.Unlock()
+		},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := tr.Run(context.Background()); err != nil {
+		t.Fatal(err)
+	}
+	if err := store.Close(); err != nil {
+		t.Fatal(err)
+	}
+	if got := tr.Counts().Applied; got != events {
+		t.Fatalf("applied %d events, want %d", got, events)
+	}
+	if len(snaps) == 0 || ds.commits.Load() == 0 {
+		t.Fatalf("no snapshot was committed (appends %d)", ds.appends.Load())
+	}
+	if n := len(ack.commits); n == 0 || ack.commits[n-1] != events {
+		t.Fatalf("last committed offset %v, want %d", ack.commits[max(0, n-1):], events)
+	}
+
+	// Recover into a fresh model and compare.
+	store2, err := checkpoint.Open(checkpoint.Options{Dir: dir})
+	if err != nil {
+		t.Fatal(err)
+	}
+	defer store2.Close()
+	m2, mon2 := newPair(t, 8)
+	meta, info, err := store2.Recover(m2.ApplyRecord)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if info.Snapshot == "" {
+		t.Fatalf("recovery did not start from a snapshot: %+v", info)
+	}
+	if err := m2.Restore(meta.Model); err != nil {
+		t.Fatal(err)
+	}
+	if err := mon2.UnmarshalState(meta.Monitor); err != nil {
+		t.Fatal(err)
+	}
+	if meta.Position.Offset != events || meta.Counts.Applied != events {
+		t.Fatalf("recovered position %v, applied %d; want %d", meta.Position, meta.Counts.Applied, events)
+	}
+	for _, side := range []online.Side{online.Users, online.Items} {
+		var a, b online.RowSet
+		m.CopyRows(side, 0, m.Rows(side), &a)
+		m2.CopyRows(side, 0, m2.Rows(side), &b)
+		if a.Len() != b.Len() {
+			t.Fatalf("%v rows: live %d, recovered %d", side, a.Len(), b.Len())
+		}
+		for i := range a.Recs {
+			x, y := a.Recs[i], b.Recs[i]
+			if x.Row != y.Row || !bytes.Equal(x.ID, y.ID) || math.Float32bits(x.Bias) != math.Float32bits(y.Bias) ||
+				x.Count != y.Count || x.Last != y.Last {
+				t.Fatalf("%v row %d differs: live %+v recovered %+v", side, x.Row, x, y)
+			}
+			for j := range x.Vec {
+				if math.Float32bits(x.Vec[j]) != math.Float32bits(y.Vec[j]) {
+					t.Fatalf("%v row %d factor %d: live %v recovered %v", side, x.Row, j, x.Vec[j], y.Vec[j])
+				}
+			}
+		}
+	}
+	if m.Mean() != m2.Mean() {
+		t.Errorf("mean: live %v, recovered %v", m.Mean(), m2.Mean())
+	}
+	if a, b := mon.Status(), mon2.Status(); a != b {
+		t.Errorf("monitor status differs:\nlive      %+v\nrecovered %+v", a, b)
+	}
+	t.Logf("%d snapshots, %d appends; last snapshot %+v", len(snaps), ds.appends.Load(), snaps[len(snaps)-1])
+}
+
+// randomSource yields events over a fixed population of users and items, at
+// random (uniform rows: the out-of-cache case).
+type randomSource struct {
+	users, items int
+	rng          *rand.Rand
+	b            stream.Batch
+	n            int64
+	stop         atomic.Bool
+	ubuf, ibuf   []byte
+}
+
+func (s *randomSource) Next(ctx context.Context) (*stream.Batch, error) {
+	if s.stop.Load() {
+		return nil, io.EOF
+	}
+	s.b.Reset()
+	for range 256 {
+		s.ubuf = fmt.Appendf(s.ubuf[:0], "u%07d", s.rng.IntN(s.users))
+		s.ibuf = fmt.Appendf(s.ibuf[:0], "i%06d", s.rng.IntN(s.items))
+		s.b.Add(stream.Event{User: s.ubuf, Item: s.ibuf, Value: float64(1 + s.rng.IntN(5)), Time: s.n})
+		s.n++
+	}
+	s.b.Pos = stream.Position{Source: "scenario", Offset: s.n}
+	return &s.b, nil
+}
+func (s *randomSource) Commit(context.Context, stream.Position) error { return nil }
+func (s *randomSource) Close() error                                  { return nil }
+
+// BenchmarkSnapshotStall measures what a full snapshot costs the trainer at
+// 2M users × 200k items, k = 64 (with -short: 200k × 20k): the longest pause
+// of any batch boundary while the snapshot is copied (target ≤ 50 ms), the
+// total copy time, the wall time to a committed snapshot, and the peak extra
+// Go heap while it is written (the tables themselves are outside the heap
+// where huge-page mappings are available).
+func BenchmarkSnapshotStall(b *testing.B) {
+	users, items := 2_000_000, 200_000
+	if testing.Short() {
+		users, items = 200_000, 20_000
+	}
+	m, mon := newPair(b, 64)
+	for u := range users {
+		if _, _, err := m.Intern(online.Users, fmt.Appendf(nil, "u%07d", u), 0); err != nil {
+			b.Fatal(err)
+		}
+	}
+	for i := range items {
+		if _, _, err := m.Intern(online.Items, fmt.Appendf(nil, "i%06d", i), 0); err != nil {
+			b.Fatal(err)
+		}
+	}
+	// The bulk load left every row dirty; a running trainer never has more
+	// than FlushRows dirty rows, so drop the marks to measure the steady state.
+	var discard online.RowSet
+	m.TakeDirty(online.ConsumerLog, &discard)
+	discard = online.RowSet{}
+	dir := b.TempDir()
+	store, err := checkpoint.Open(checkpoint.Options{Dir: dir})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer store.Close()
+	if _, _, err := store.Recover(m.ApplyRecord); err != nil {
+		b.Fatal(err)
+	}
+	var ms runtime.MemStats
+	runtime.GC()
+	runtime.ReadMemStats(&ms)
+	base := ms.HeapInuse
+	b.ResetTimer()
+	var last online.SnapshotStats
+	var peak uint64
+	for range b.N {
+		src := &randomSource{users: users, items: items, rng: rand.New(rand.NewPCG(1, 2))}
+		done := make(chan online.SnapshotStats, 1)
+		tr, err := online.NewTrainer(online.TrainerOptions{
+			Model: m, Monitor: mon, Source: src, Checkpoint: store,
+			SnapshotInterval: time.Nanosecond, Progress: -1,
+			OnSnapshot: func(s online.SnapshotStats) {
+				select {
+				case done <- s:
+				default:
+				}
+			},
+		})
+		if err != nil {
+			b.Fatal(err)
+		}
+		stopPoll := make(chan struct{})
+		var wg sync.WaitGroup
+		wg.Go(func() {
+			var ms runtime.MemStats
+			for {
+				select {
+				case <-stopPoll:
+					return
+				case <-time.After(20 * time.Millisecond):
+				}
+				runtime.ReadMemStats(&ms)
+				if ms.HeapInuse > base && ms.HeapInuse-base > peak {
+					peak = ms.HeapInuse - base
+				}
+			}
+		})
+		wg.Go(func() {
+			last = <-done
+			src.stop.Store(true)
+		})
+		if err := tr.Run(context.Background()); err != nil {
+			b.Fatal(err)
+		}
+		close(stopPoll)
+		wg.Wait()
+	}
+	b.ReportMetric(float64(last.StallMax.Microseconds())/1000, "stall-max-ms")
+	b.ReportMetric(float64(last.CopyTime.Microseconds())/1000, "copy-ms")
+	b.ReportMetric(last.Took.Seconds(), "snapshot-s")
+	b.ReportMetric(float64(last.Rows), "rows")
+	b.ReportMetric(float64(peak)/(1<<20), "extra-heap-MB")
+}
