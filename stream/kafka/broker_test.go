@@ -241,7 +241,19 @@ func deadLetters(tb testing.TB, o Options, want int) []kgo.Message {
 	var out []kgo.Message
 	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
 	defer cancel()
-	ends := endOffsets(tb, Options{Brokers: o.Brokers, Topic: o.DeadLetterTopic, Security: o.Security})
+	// The writes are asynchronous: wait until the topic holds want records.
+	var ends map[int]int64
+	for deadline := time.Now().Add(20 * time.Second); ; {
+		ends = endOffsets(tb, Options{Brokers: o.Brokers, Topic: o.DeadLetterTopic, Security: o.Security})
+		total := int64(0)
+		for _, e := range ends {
+			total += e
+		}
+		if total >= int64(want) || time.Now().After(deadline) {
+			break
+		}
+		time.Sleep(50 * time.Millisecond)
+	}
 	for p, end := range ends {
 		if end == 0 {
 			continue

@@ -44,7 +44,9 @@ type ProduceStats struct {
 
 // Produce writes records to o.Topic at o.Rate until the iterator ends, o.Max
 // records are written, o.MaxDuration passes or ctx ends (the last two are not
-// errors). Records are copied, so the iterator may reuse its buffers.
+// errors). The counts are of acknowledged writes; a write in flight when ctx
+// ends may land uncounted. Records are copied, so the iterator may reuse its
+// buffers.
 func Produce(ctx context.Context, o ProduceOptions, records iter.Seq[Record]) (ProduceStats, error) {
 	var st ProduceStats
 	if len(o.Brokers) == 0 || o.Topic == "" {
@@ -74,12 +76,14 @@ func Produce(ctx context.Context, o ProduceOptions, records iter.Seq[Record]) (P
 	}
 	defer w.Close()
 
-	if o.MaxDuration > 0 {
-		var cancel context.CancelFunc
-		ctx, cancel = context.WithTimeout(ctx, o.MaxDuration)
-		defer cancel()
-	}
 	start := time.Now()
+	// MaxDuration is checked between writes, never by cutting one off: a
+	// write cancelled in flight may still land, and the counts would lie.
+	var deadline time.Time
+	if o.MaxDuration > 0 {
+		deadline = start.Add(o.MaxDuration)
+	}
+	timeUp := false
 	chunk := make([]kgo.Message, 0, o.Chunk)
 	arena := make([]byte, 0, 64<<10)
 	var werr error
@@ -87,13 +91,18 @@ func Produce(ctx context.Context, o ProduceOptions, records iter.Seq[Record]) (P
 		if len(chunk) == 0 {
 			return true
 		}
+		due := time.Now()
 		if o.Rate > 0 {
-			// Token bucket: by time t, rate·t tokens have accrued; wait until
-			// the chunk fits.
-			due := start.Add(time.Duration(float64(st.Records+int64(len(chunk))-int64(o.Chunk)) / o.Rate * float64(time.Second)))
-			if d := time.Until(due); d > 0 && !sleep(ctx, d) {
-				return false
-			}
+			// Token bucket holding one chunk: by time t after the start,
+			// rate·t tokens have accrued; wait until the chunk fits.
+			due = start.Add(time.Duration(float64(st.Records+int64(len(chunk))-int64(o.Chunk)) / o.Rate * float64(time.Second)))
+		}
+		if !deadline.IsZero() && !due.Before(deadline) {
+			timeUp = true
+			return false
+		}
+		if d := time.Until(due); d > 0 && !sleep(ctx, d) {
+			return false
 		}
 		if err := w.WriteMessages(ctx, chunk...); err != nil {
 			if ctx.Err() == nil {
@@ -127,7 +136,7 @@ func Produce(ctx context.Context, o ProduceOptions, records iter.Seq[Record]) (P
 			break
 		}
 	}
-	if werr == nil && ctx.Err() == nil {
+	if werr == nil && ctx.Err() == nil && !timeUp {
 		flush()
 	}
 	st.Elapsed = time.Since(start)

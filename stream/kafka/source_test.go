@@ -3,6 +3,7 @@ package kafka
 import (
 	"context"
 	"errors"
+	"fmt"
 	"os"
 	"strconv"
 	"strings"
@@ -418,5 +419,84 @@ func TestSASL(t *testing.T) {
 			}
 			t.Logf("wrong credentials: %v after %v", err, took.Round(time.Millisecond))
 		})
+	}
+}
+
+// TestLargeRecord: a record larger than the worker's read buffer is read
+// whole (the buffer grows), set aside by the decoder, and reading goes on.
+func TestLargeRecord(t *testing.T) {
+	broker := brokerFrom(t, envBroker)
+	o := testOptions(t, broker, 1)
+	mustEnsure(t, o)
+	big := `{"user":"` + strings.Repeat("x", 300<<10) + `","item":"show-1","value":1,"time":1700000000000}`
+	recs := func(yield func(Record) bool) {
+		for i := range 30 {
+			v := fmt.Sprintf(`{"user":"listener-%d","item":"show-%d","value":2,"time":%d}`, i, i, 1700000000000+int64(i))
+			if i == 10 {
+				v = big
+			}
+			if !yield(Record{Key: []byte("k"), Value: []byte(v)}) {
+				return
+			}
+		}
+	}
+	if _, err := Produce(context.Background(), ProduceOptions{Brokers: o.Brokers, Topic: o.Topic}, recs); err != nil {
+		t.Fatal(err)
+	}
+	src := mustNew(t, o, stream.Position{})
+	defer src.Close()
+	a := newApplier(t, src)
+	a.run(30, 30*time.Second)
+	if a.events != 29 || a.rejected != 1 {
+		t.Fatalf("applied %d, rejected %d; want 29 and 1", a.events, a.rejected)
+	}
+	dls := deadLetters(t, o, 1)
+	if len(dls[0].Value) != len(big) {
+		t.Errorf("dead letter holds %d bytes, want the original %d", len(dls[0].Value), len(big))
+	}
+	if f, _ := header(dls[0], HeaderField); f != "user" {
+		t.Errorf("dead letter field %q, want user (longer than stream.MaxIDLen)", f)
+	}
+}
+
+// TestProduceBounds: the token bucket holds the rate, and Max and
+// MaxDuration stop the producer.
+func TestProduceBounds(t *testing.T) {
+	broker := brokerFrom(t, envBroker)
+	o := testOptions(t, broker, 2)
+	mustEnsure(t, o)
+	ctx := context.Background()
+
+	// 1,000 records at 4,000/s with chunks of 100 (the bucket's depth): the
+	// first chunk goes at once, the other 900 records need at least 0.225 s.
+	st, err := Produce(ctx, ProduceOptions{Brokers: o.Brokers, Topic: o.Topic, Rate: 4000, Chunk: 100, Max: 1000}, testRecords(5000))
+	if err != nil {
+		t.Fatal(err)
+	}
+	if st.Records != 1000 {
+		t.Fatalf("wrote %d records, want Max = 1000", st.Records)
+	}
+	if st.Elapsed < 225*time.Millisecond {
+		t.Errorf("1000 records at 4000/s took %v, want at least 225ms", st.Elapsed)
+	}
+
+	// MaxDuration ends an unbounded stream without an error.
+	endless := func(yield func(Record) bool) {
+		for i := 0; ; i++ {
+			if !yield(Record{Key: []byte("k"), Value: []byte(`{"user":"a","item":"b","value":1}`)}) {
+				return
+			}
+		}
+	}
+	st, err = Produce(ctx, ProduceOptions{Brokers: o.Brokers, Topic: o.Topic, Rate: 2000, Chunk: 50, MaxDuration: 300 * time.Millisecond}, endless)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if st.Records == 0 || st.Records > 2000*3/10+50 {
+		t.Errorf("300ms at 2000/s wrote %d records, want 1..650", st.Records)
+	}
+	ends := endOffsets(t, o)
+	if ends[0]+ends[1] != 1000+st.Records {
+		t.Errorf("topic holds %d records, want %d", ends[0]+ends[1], 1000+st.Records)
 	}
 }
