@@ -2,6 +2,7 @@ package kafka
 
 import (
 	"context"
+	"crypto/tls"
 	"strings"
 	"testing"
 	"time"
@@ -255,5 +256,25 @@ func TestNextHandOver(t *testing.T) {
 	})
 	if allocs != 0 {
 		t.Errorf("Next allocates %.1f times per batch", allocs)
+	}
+}
+
+// TestSecurityPlumbing: TLS and SASL reach the readers' Dialer and the
+// writers' Transport. (The test broker has no TLS listener; SASL is exercised
+// for real in TestSASL.)
+func TestSecurityPlumbing(t *testing.T) {
+	m, err := SASL("SCRAM-SHA-256", "listener", "pw")
+	if err != nil {
+		t.Fatal(err)
+	}
+	cfg := &tls.Config{ServerName: "broker.test", MinVersion: tls.VersionTLS12}
+	o := Options{Security: Security{TLS: cfg, SASL: m}}
+	d := o.dialer()
+	if d.TLS != cfg || d.SASLMechanism != m {
+		t.Errorf("dialer: TLS %p, SASL %v", d.TLS, d.SASLMechanism)
+	}
+	tr := o.Security.transport()
+	if tr.TLS != cfg || tr.SASL != m {
+		t.Errorf("transport: TLS %p, SASL %v", tr.TLS, tr.SASL)
 	}
 }
