@@ -770,3 +770,8 @@ func (s *Source) Close() error {
 	})
 	return err
 }
+
+var (
+	_ stream.Source   = (*Source)(nil)
+	_ stream.Rejecter = (*DeadLetter)(nil)
+)

@@ -500,3 +500,30 @@ func TestProduceBounds(t *testing.T) {
 		t.Errorf("topic holds %d records, want %d", ends[0]+ends[1], 1000+st.Records)
 	}
 }
+
+// TestPositionBeyondEnd: a checkpoint position past a partition's end (the
+// topic was recreated, say) stops the source with an error naming the
+// partition and both offsets, rather than silently reading from elsewhere.
+func TestPositionBeyondEnd(t *testing.T) {
+	broker := brokerFrom(t, envBroker)
+	o := testOptions(t, broker, 1)
+	mustEnsure(t, o)
+	produce(t, o, 50)
+	from := stream.Position{Source: "kafka", Topic: o.Topic, Partitions: []stream.PartitionOffset{{Partition: 0, Next: 5000}}}
+	src := mustNew(t, o, from)
+	defer src.Close()
+	ctx, cancel := context.WithTimeout(context.Background(), 30*time.Second)
+	defer cancel()
+	for {
+		b, err := src.Next(ctx)
+		if err != nil {
+			if !errors.Is(err, errBeyondEnd) || !strings.Contains(err.Error(), "partition 0: next offset 5000 is beyond the end offset 50") {
+				t.Fatalf("unclear error: %v", err)
+			}
+			return
+		}
+		if b.Len() > 0 {
+			t.Fatalf("read %d events from a position past the end", b.Len())
+		}
+	}
+}
