@@ -20,6 +20,7 @@ const (
 	DefaultFlushRows        = 50000
 	DefaultSnapshotInterval = 5 * time.Minute
 	DefaultSnapshotChunk    = 1 << 14
+	DefaultSnapshotLogBytes = 512 << 20
 	DefaultOfferInterval    = 100 * time.Millisecond
 	DefaultProgress         = 5 * time.Second
 	DefaultRecallRate       = 50
@@ -51,6 +52,10 @@ type TrainerOptions struct {
 	// SnapshotInterval is the time between full snapshots; default 5m.
 	// Negative disables periodic snapshots.
 	SnapshotInterval time.Duration
+	// SnapshotLogBytes starts a snapshot early once the checkpoint's log
+	// holds this many bytes (when the Checkpointer reports its size with a
+	// LogBytes method), bounding recovery time; default 512 MiB.
+	SnapshotLogBytes int64
 	// SnapshotChunk is the number of rows copied per batch boundary while a
 	// snapshot or a full publish is in progress; default 16384.
 	SnapshotChunk int
@@ -229,6 +234,9 @@ func NewTrainer(o TrainerOptions) (*Trainer, error) {
 	}
 	if o.SnapshotInterval == 0 {
 		o.SnapshotInterval = DefaultSnapshotInterval
+	}
+	if o.SnapshotLogBytes <= 0 {
+		o.SnapshotLogBytes = DefaultSnapshotLogBytes
 	}
 	if o.SnapshotChunk <= 0 {
 		o.SnapshotChunk = DefaultSnapshotChunk
@@ -539,7 +547,11 @@ func (t *Trainer) send(j job) {
 // memory at once.
 func (t *Trainer) snapshotStep(now time.Time) {
 	if !t.snap.on {
-		if t.o.SnapshotInterval < 0 || now.Sub(t.lastSnap) < t.o.SnapshotInterval {
+		due := t.o.SnapshotInterval >= 0 && now.Sub(t.lastSnap) >= t.o.SnapshotInterval
+		if lb, ok := t.o.Checkpoint.(interface{ LogBytes() int64 }); ok && lb.LogBytes() >= t.o.SnapshotLogBytes {
+			due = true
+		}
+		if !due {
 			return
 		}
 		t.lastSnap = now

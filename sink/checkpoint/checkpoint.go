@@ -65,6 +65,7 @@ import (
 	"slices"
 	"strconv"
 	"strings"
+	"sync/atomic"
 
 	"go.uber.org/zap"
 
@@ -153,6 +154,8 @@ type Store struct {
 	logF    *os.File
 	logName string
 	logEnd  int64
+	// logSize mirrors logEnd for LogBytes, which other goroutines call.
+	logSize atomic.Int64
 	lastSeq uint64 // meta.Seq of the last Append
 	rec     []byte // reused record buffer
 	block   []byte // reused snapshot block buffer
@@ -161,6 +164,11 @@ type Store struct {
 }
 
 var _ online.Checkpointer = (*Store)(nil)
+
+// LogBytes returns the size of the current log file: the bytes a recovery
+// replays on top of the newest snapshot. Safe for concurrent use; the trainer
+// uses it to start a snapshot early when the log grows large.
+func (s *Store) LogBytes() int64 { return s.logSize.Load() }
 
 // Open opens (creating if needed) the checkpoint directory o.Dir and takes an
 // exclusive lock on it. It removes stray *.tmp files left by a crash. A Store

@@ -78,6 +78,7 @@ func (s *Store) Append(rows *online.RowSet, meta *online.Meta) error {
 		return s.undoAppend(fmt.Errorf("checkpoint: sync %s: %w", s.logName, err))
 	}
 	s.logEnd += int64(len(buf))
+	s.logSize.Store(s.logEnd)
 	s.lastSeq = meta.Seq
 	if s.snap != nil {
 		s.snap.appended = true
@@ -107,6 +108,7 @@ func (s *Store) startLog(gen uint64, rank int) error {
 		}
 	}
 	s.logF, s.logName, s.logEnd = f, name, fileHeaderSize
+	s.logSize.Store(s.logEnd)
 	s.gen, s.rank = gen, rank
 	return nil
 }

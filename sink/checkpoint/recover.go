@@ -269,6 +269,7 @@ func (s *Store) resumeLog(gen uint64, sc logScan, rank int) error {
 		}
 	}
 	s.logF, s.logName, s.logEnd = f, name, end
+	s.logSize.Store(s.logEnd)
 	s.gen, s.rank = gen, rank
 	return nil
 }
