@@ -1056,9 +1056,10 @@ func lastLive(t *table) int32 {
 // ApplyRecord puts a recovered row back exactly (ID, factors, bias, count,
 // time, epoch) at rec.Row, replacing whatever held that row, or applies a
 // Deleted record (frees the ID's row and records its tombstone). Records are
-// applied in log order; later ones overwrite earlier ones. Tombstones are
-// not checked (a row may be recorded before its erasure), and no dirty marks
-// are set. Errors name the field at fault and change nothing.
+// applied in log order; later ones overwrite earlier ones. Tombstones and
+// the row caps are not checked (a fuzzy snapshot can hold a row erased later
+// in the log, so both may be exceeded until the log is applied), and no
+// dirty marks are set. Errors name the field at fault and change nothing.
 func (m *Model) ApplyRecord(rec *RowRecord) error {
 	if rec == nil {
 		return errors.New("online: apply record: nil record")
@@ -1096,9 +1097,6 @@ func (m *Model) ApplyRecord(rec *RowRecord) error {
 			x.insert(rec.ID, rec.Row)
 		}
 	} else {
-		if t.max > 0 && t.live >= t.max {
-			return fmt.Errorf("online: apply record %s row %d: %w", s, rec.Row, ErrFull)
-		}
 		t.claim(rec.Row)
 		x.insert(rec.ID, rec.Row)
 	}
