@@ -736,3 +736,73 @@ func TestLearnsToNoiseFloor(t *testing.T) {
 		t.Fatalf("late-window RMSE %.4f not within [−5%%, +10%%] of σ = %.2f", rmse, sigma)
 	}
 }
+
+// checkInvariants verifies the bookkeeping that recovery and reuse rely on:
+// every row below the high-water mark is live or free exactly once, each live
+// row's ID maps back to it, and the index holds exactly the live rows.
+func checkInvariants(t *testing.T, m *Model) {
+	t.Helper()
+	for s := range 2 {
+		tab, x := &m.tab[s], &m.idx[s]
+		free := map[int32]bool{}
+		for _, r := range tab.free {
+			if r < 0 || r >= tab.next || free[r] || tab.isLive(r) {
+				t.Fatalf("%s free list bad at row %d", Side(s), r)
+			}
+			free[r] = true
+		}
+		live := 0
+		for r := int32(0); r < tab.next; r++ {
+			if !tab.isLive(r) {
+				if !free[r] {
+					t.Fatalf("%s row %d neither live nor free", Side(s), r)
+				}
+				continue
+			}
+			live++
+			id := x.id(r)
+			if got, ok := x.find(id); !ok || got != r {
+				t.Fatalf("%s row %d: ID %q maps to %d,%v", Side(s), r, id, got, ok)
+			}
+		}
+		if live != tab.live || x.n != live {
+			t.Fatalf("%s: %d live rows, counter %d, index %d", Side(s), live, tab.live, x.n)
+		}
+	}
+}
+
+// FuzzModelOps drives Intern, Step, Erase and ApplyRecord from arbitrary
+// bytes: no input may panic or break the invariants.
+func FuzzModelOps(f *testing.F) {
+	f.Add([]byte{0, 1, 2, 3, 4, 5, 6, 7, 8, 9, 10, 200, 3, 7, 1, 9})
+	f.Add([]byte{3, 3, 3, 0, 0, 0, 2, 2, 1, 1, 4, 4, 255, 128})
+	f.Fuzz(func(t *testing.T, ops []byte) {
+		m := newModel(t, Options{Rank: 4, Mode: Implicit, Negatives: 2, MaxUsers: 6, Seed: 1})
+		m.Track(ConsumerLog, true)
+		for j := 0; j+1 < len(ops); j += 2 {
+			op, arg := ops[j]%5, ops[j+1]
+			s := Side(arg & 1)
+			id := fmt.Appendf(nil, "id-%d", arg>>1%8)
+			switch op {
+			case 0:
+				m.Intern(s, id, int64(j))
+			case 1:
+				u, _ := m.Lookup(Users, id)
+				i, _ := m.Lookup(Items, id)
+				m.Step(u, i, float64(arg)/16, int64(j))
+			case 2:
+				m.Erase(s, id)
+			case 3:
+				vec := []float32{float32(arg), 1, 2, 3}
+				if arg%3 == 0 {
+					vec = vec[:3] // refused: wrong length
+				}
+				m.ApplyRecord(&RowRecord{Side: s, Row: int32(arg % 13), ID: id, Vec: vec, Deleted: arg%7 == 0})
+			case 4:
+				var rs RowSet
+				m.TakeDirty(ConsumerLog, &rs)
+			}
+			checkInvariants(t, m)
+		}
+	})
+}
