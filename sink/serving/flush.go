@@ -154,6 +154,7 @@ func (f *flusherState) round(parent context.Context) (err error) {
 		w.spareN = nil
 		ended = w.sweep == sweepEnded
 	}
+	gen := w.gen
 	var meta *online.Meta
 	if w.metaNew {
 		meta, w.meta = w.meta, w.metaSpare
@@ -267,13 +268,13 @@ func (f *flusherState) round(parent context.Context) (err error) {
 	// 4. Finish a complete publish: its metadata, then the pointer flip.
 	if ended {
 		if err := f.writeMeta(parent, f.building, f.buildMade, &fullMeta); err != nil {
-			f.reEnd()
+			f.reEnd(gen)
 			recycle()
 			return err
 		}
-		if err := f.flip(parent); err != nil {
+		if err := f.flip(parent, gen); err != nil {
 			if !errors.Is(err, errLost) {
-				f.reEnd()
+				f.reEnd(gen)
 			}
 			recycle()
 			return err
@@ -286,14 +287,17 @@ func (f *flusherState) round(parent context.Context) (err error) {
 }
 
 // reEnd marks the sweep as ended again so the next round retries its finish.
-func (f *flusherState) reEnd() {
+func (f *flusherState) reEnd(gen uint64) {
 	w := f.w
 	w.mu.Lock()
+	defer w.mu.Unlock()
+	if w.gen != gen {
+		return // a newer complete copy has started; it supersedes this one
+	}
 	if w.next == nil {
 		w.next = newPending(0)
 	}
 	w.sweep = sweepEnded
-	w.mu.Unlock()
 }
 
 func (f *flusherState) ctx(parent context.Context) (context.Context, context.CancelFunc) {
@@ -607,7 +611,7 @@ func (f *flusherState) writeMeta(parent context.Context, v uint64, made time.Tim
 
 // flip moves the pointer to the version just built and schedules the old one
 // for retirement.
-func (f *flusherState) flip(parent context.Context) error {
+func (f *flusherState) flip(parent context.Context, gen uint64) error {
 	w := f.w
 	ctx, cancel := f.ctx(parent)
 	defer cancel()
@@ -634,12 +638,14 @@ func (f *flusherState) flip(parent context.Context) error {
 	f.cur, f.curOK, f.curMade, f.building = f.building, true, f.buildMade, 0
 	w.mu.Lock()
 	// Rows offered during the publish are in the live table too: drop the
-	// building table.
-	if w.next != nil {
-		w.next.reset(0)
-		w.spareN, w.next = w.next, nil
+	// building table, unless a newer complete copy has begun meanwhile.
+	if w.gen == gen {
+		if w.next != nil {
+			w.next.reset(0)
+			w.spareN, w.next = w.next, nil
+		}
+		w.sweep = sweepIdle
 	}
-	w.sweep = sweepIdle
 	w.mu.Unlock()
 	w.smu.Lock()
 	w.st.Versions++

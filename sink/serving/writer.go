@@ -220,7 +220,8 @@ type Writer struct {
 	live      *pending // rows for the current version
 	next      *pending // rows for the version being built; nil when none
 	sweep     sweepState
-	aborted   bool // the sweep in progress cannot be completed (data loss)
+	aborted   bool   // the sweep in progress cannot be completed (data loss)
+	gen       uint64 // numbers the complete copies (sweeps)
 	meta      *online.Meta
 	metaSpare *online.Meta
 	metaNew   bool
@@ -351,6 +352,7 @@ func (w *Writer) beginSweepLocked() {
 		}
 	}
 	w.next.reset(0)
+	w.gen++
 	w.sweep = sweepActive
 	w.aborted = false
 	w.want.Store(false)
