@@ -78,6 +78,10 @@ type TrainerOptions struct {
 	MaxRate float64
 	// OnAlarm, when set, is called for each drift alarm (after it is logged).
 	OnAlarm func(Alarm)
+	// OnErase, when set, is called after an erasure event is applied to the
+	// model, with the side and the ID (valid only during the call), so that
+	// copies outside the model (the rejects file) can be purged too.
+	OnErase func(side Side, id []byte) error
 	// OnSnapshot, when set, is called by the checkpoint writer goroutine
 	// after each snapshot is committed.
 	OnSnapshot func(SnapshotStats)
@@ -441,6 +445,12 @@ func (t *Trainer) erase(ev *stream.Event) {
 	}
 	found := t.m.Erase(side, id)
 	t.counts.Erased++
+	if t.o.OnErase != nil {
+		if err := t.o.OnErase(side, id); err != nil {
+			t.log.Error("erase outside the model", zap.Stringer("side", side), zap.Error(err))
+		}
+	}
+	// The ID itself is personal data: it is not logged.
 	t.log.Info("erased", zap.Stringer("side", side), zap.Bool("found", found),
 		zap.Int32("partition", ev.Partition), zap.Int64("offset", ev.Offset))
 }

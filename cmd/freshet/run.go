@@ -191,6 +191,11 @@ func openDaemon(cfg *config.Config, log *zap.Logger) (_ *daemon, err error) {
 	to := trainerOptions(cfg)
 	to.Model, to.Monitor, to.Source, to.Checkpoint = d.model, d.monitor, d.source, d.store
 	to.Resume, to.Logger = resume, log.Named("trainer")
+	rejects := d.rejects
+	to.OnErase = func(_ online.Side, id []byte) error {
+		_, err := rejects.RemoveID(id)
+		return err
+	}
 	if cfg.Source.Kind == "scenario" {
 		to.MaxRate = cfg.Source.Scenario.Rate
 	}
