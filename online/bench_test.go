@@ -193,3 +193,41 @@ func BenchmarkKernels(b *testing.B) {
 		runtime.KeepAlive(sink)
 	}
 }
+
+// BenchmarkStepImplicit measures implicit steps at k = 64 on 1k × 1k tables:
+// pointwise, pointwise with 4 sampled negatives, and BPR with 1 negative.
+func BenchmarkStepImplicit(b *testing.B) {
+	for _, v := range []struct {
+		name string
+		o    Options
+	}{
+		{"pointwise", Options{Rank: 64, Mode: Implicit}},
+		{"negatives=4", Options{Rank: 64, Mode: Implicit, Negatives: 4}},
+		{"bpr", Options{Rank: 64, Mode: Implicit, Pairwise: true}},
+	} {
+		b.Run(v.name, func(b *testing.B) {
+			m, err := New(v.o)
+			if err != nil {
+				b.Fatal(err)
+			}
+			for s := range m.tab {
+				for range 1000 {
+					m.initRow(Side(s), m.tab[s].row(m.tab[s].alloc()), []byte("x"))
+				}
+			}
+			r := rand.NewPCG(5, 6)
+			var g [16]benchEvent
+			n := 0
+			for n < b.N {
+				benchGroup(r, &g, 1000, 1000)
+				for _, e := range g {
+					if _, err := m.Step(e.u, e.i, 1, 0); err != nil {
+						b.Fatal(err)
+					}
+				}
+				n += 16
+			}
+			b.ReportMetric(float64(n)/b.Elapsed().Seconds(), "events/s")
+		})
+	}
+}
