@@ -19,6 +19,7 @@
 #   FRESHET_KAFKA_LIBS=deploy/.run/kafka-libs-<version>  jars (kept across stop)
 #   FRESHET_KAFKA_HEAP=512m              broker heap
 #   FRESHET_KAFKA_WAIT=60                seconds to wait for the broker to come up
+#   FRESHET_KAFKA_STOP_WAIT=5            seconds stop waits after SIGTERM before SIGKILL
 set -euo pipefail
 
 here="$(cd "$(dirname "${BASH_SOURCE[0]}")" && pwd)"
@@ -34,6 +35,7 @@ run="${FRESHET_KAFKA_RUN:-$here/.run/kafka}"
 libs="${FRESHET_KAFKA_LIBS:-$here/.run/kafka-libs-$version}"
 heap="${FRESHET_KAFKA_HEAP:-512m}"
 wait_s="${FRESHET_KAFKA_WAIT:-60}"
+stop_wait="${FRESHET_KAFKA_STOP_WAIT:-5}"
 node_id=1
 
 say() { printf 'kafka.sh: %s\n' "$*" >&2; }
@@ -152,14 +154,20 @@ start() {
 stop_broker() {
 	local p
 	if p="$(pid)"; then
+		# The state is deleted next, so a slow controlled shutdown buys
+		# nothing: give SIGTERM a few seconds, then SIGKILL.
 		kill "$p" 2>/dev/null || true
-		for _ in $(seq 1 100); do
+		for _ in $(seq 1 $((stop_wait * 5))); do
 			kill -0 "$p" 2>/dev/null || break
 			sleep 0.2
 		done
 		if kill -0 "$p" 2>/dev/null; then
-			[[ "${1:-}" == quiet ]] || say "broker PID $p ignored SIGTERM for 20 s; killing it"
+			[[ "${1:-}" == quiet ]] || say "broker PID $p still running ${stop_wait} s after SIGTERM; killing it"
 			kill -9 "$p" 2>/dev/null || true
+			for _ in $(seq 1 50); do
+				kill -0 "$p" 2>/dev/null || break
+				sleep 0.1
+			done
 		fi
 		[[ "${1:-}" == quiet ]] || say "stopped broker PID $p"
 	else
