@@ -15,18 +15,19 @@ import (
 	"freshet.dev/freshet/sink/serving/reader"
 )
 
-// flipScript moves the pointer from ARGV[1] ("" = absent) to ARGV[2] in one
-// step. It returns 1 when it moved it, 2 when the pointer already was ARGV[2]
-// (a retry after a lost reply), 0 when the pointer held something else. One
-// key, so it is valid on a cluster.
+// flipScript moves the pointer to ARGV[2] if it holds ARGV[1] ("" = absent;
+// "*" = anything, used when republishing after a data loss). It returns
+// {1, previous} when it moved it, {2, previous} when the pointer already was
+// ARGV[2] (a retry after a lost reply), {0, previous} when the pointer held
+// something else. One key, so it is valid on a cluster.
 var flipScript = redis.NewScript(`
 local c = redis.call('GET', KEYS[1])
-if c == ARGV[2] then return 2 end
-if (c == false and ARGV[1] == '') or c == ARGV[1] then
+if c == ARGV[2] then return {2, c} end
+if ARGV[1] == '*' or (c == false and ARGV[1] == '') or c == ARGV[1] then
   redis.call('SET', KEYS[1], ARGV[2])
-  return 1
+  return {1, c or ''}
 end
-return 0
+return {0, c or ''}
 `)
 
 type retiring struct {
@@ -381,10 +382,12 @@ func (f *flusherState) lost() {
 	w.log.Warn("serving: Redis lost its data; republishing a complete version",
 		zap.Uint64("version", f.cur), zap.Uint64("building", f.building))
 	if f.cur != 0 {
-		f.retire = append(f.retire, retiring{v: f.cur}) // leftovers: delete at once
+		// Usually gone already; if only the marker changed, readers may
+		// still use it, so it gets the grace period.
+		f.retire = append(f.retire, retiring{v: f.cur, deadline: time.Now().Add(w.o.Grace)})
 	}
 	if f.building != 0 {
-		f.retire = append(f.retire, retiring{v: f.building})
+		f.retire = append(f.retire, retiring{v: f.building}) // never visible: at once
 	}
 	f.cur, f.curOK, f.building = 0, false, 0
 	if tok, err := w.newToken(); err == nil {
@@ -615,14 +618,28 @@ func (f *flusherState) flip(parent context.Context, gen uint64) error {
 	w := f.w
 	ctx, cancel := f.ctx(parent)
 	defer cancel()
-	old := ""
+	old := "*" // after a loss, or at first start: take the pointer over
 	if f.cur != 0 {
 		old = strconv.FormatUint(f.cur, 10)
 	}
 	nv := strconv.FormatUint(f.building, 10)
-	res, err := flipScript.Run(ctx, w.c, []string{w.l.Current()}, old, nv).Int()
+	reply, err := flipScript.Run(ctx, w.c, []string{w.l.Current()}, old, nv).Slice()
 	if err != nil {
 		return fmt.Errorf("serving: flip %s to %s: %w", w.l.Current(), nv, err)
+	}
+	var res int64
+	var prev string
+	if len(reply) == 2 {
+		res, _ = reply[0].(int64)
+		prev, _ = reply[1].(string)
+	}
+	if f.cur == 0 && res == 1 && prev != "" {
+		// A version we did not know as current (someone else's marker):
+		// retire it after the grace period.
+		if pv, err := reader.ParsePointer(prev); err == nil && pv != f.building {
+			f.retire = append(f.retire, retiring{v: pv, deadline: time.Now().Add(w.o.Grace)})
+			f.expire(parent, pv)
+		}
 	}
 	if res == 0 {
 		// The pointer is not what we left: another writer, or Redis lost

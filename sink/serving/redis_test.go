@@ -411,3 +411,99 @@ func TestACL(t *testing.T) {
 		t.Fatalf("error %q does not say permission denied", e)
 	}
 }
+
+// TestLossDuringFullCopy empties Redis while a complete copy is being
+// written (as a failover to an empty replica would): the copy is dropped at
+// EndFull, WantFull turns true, and the next copy publishes a complete
+// version. A marker overwritten by someone else counts as a loss too.
+func TestLossDuringFullCopy(t *testing.T) {
+	srv := startServer(t, freePort(t), nil, nil)
+	m := newFakeModel(4000, 1000, 8, online.Implicit, 12)
+	w := newWriter(t, Options{Addrs: []string{srv.addr()}, Prefix: "loss", Mode: online.Implicit,
+		FlushInterval: 10 * time.Millisecond, RowsPerPipeline: 500})
+	c := client(srv.addr())
+	defer c.Close()
+	ctx := context.Background()
+	if !w.WantFull() {
+		t.Fatal("want full at start")
+	}
+	// First half of a copy, flushed.
+	rs := new(online.RowSet)
+	rs.Reset(8)
+	for r := range int32(2000) {
+		rs.Append(m.record(0, r))
+	}
+	w.OfferFull(rs)
+	waitFor(t, 10*time.Second, "chunks written", func() bool { return w.Status().VectorsWritten >= 2000 })
+	if err := c.FlushAll(ctx).Err(); err != nil {
+		t.Fatal(err)
+	}
+	rs = new(online.RowSet)
+	rs.Reset(8)
+	for r := range int32(2000) {
+		rs.Append(m.record(0, 2000+r))
+	}
+	w.OfferFull(rs)
+	waitFor(t, 10*time.Second, "loss detected", func() bool { return w.Status().DataLosses == 1 })
+	if w.WantFull() {
+		t.Fatal("WantFull true in the middle of a copy")
+	}
+	w.EndFull(m.meta.Clone())
+	if !w.WantFull() {
+		t.Fatal("an interrupted copy must end in WantFull")
+	}
+	if c.Exists(ctx, "loss/current").Val() != 0 {
+		t.Fatal("the interrupted copy was published")
+	}
+	publishFull(t, w, m)
+	waitFor(t, 10*time.Second, "published", func() bool { return w.Status().Version != 0 })
+	_, got := readAll(t, c, "loss")
+	compareModel(t, m, got)
+
+	// Someone else's marker: also a loss.
+	v := w.Status().Version
+	c.Set(ctx, "loss/epoch", "not-ours", 0)
+	waitFor(t, 10*time.Second, "second loss", func() bool { return w.Status().DataLosses == 2 && w.WantFull() })
+	publishFull(t, w, m)
+	waitFor(t, 10*time.Second, "republished", func() bool { return w.Status().Version > v })
+	_, got = readAll(t, c, "loss")
+	compareModel(t, m, got)
+}
+
+// TestReaderBadData: a corrupt pointer, metadata or value gives an error that
+// names the key, never a panic.
+func TestReaderBadData(t *testing.T) {
+	addr := sharedRedis(t)
+	prefix := testPrefix(t, addr)
+	c := client(addr)
+	defer c.Close()
+	ctx := context.Background()
+	rd, _ := reader.New(c, reader.Options{Prefix: prefix})
+	if _, err := rd.Resolve(ctx); !errors.Is(err, reader.ErrNoVersion) {
+		t.Fatalf("empty: %v", err)
+	}
+	l, _ := reader.NewLayout(prefix)
+	c.Set(ctx, l.Current(), "abc", 0)
+	if _, err := rd.Resolve(ctx); err == nil || !strings.Contains(err.Error(), `"abc"`) {
+		t.Fatalf("bad pointer: %v", err)
+	}
+	c.Set(ctx, l.Current(), "3", 0)
+	c.Set(ctx, l.Meta(3), "{not json", 0)
+	if _, err := rd.Resolve(ctx); err == nil || !strings.Contains(err.Error(), l.Meta(3)) {
+		t.Fatalf("bad meta: %v", err)
+	}
+	good := reader.Meta{Format: 1, Version: 3, Rank: 4, Mode: "implicit", Buckets: 2, Encoding: reader.EncodingFor(4, false)}
+	raw, _ := json.Marshal(good)
+	c.Set(ctx, l.Meta(3), raw, 0)
+	c.HSet(ctx, l.Bucket(3, reader.SideUser, reader.BucketOf("listener-a", 2)), "listener-a", "short")
+	if _, err := rd.Fetch(ctx, []string{"listener-a"}, nil); err == nil || !strings.Contains(err.Error(), "listener-a") {
+		t.Fatalf("bad value: %v", err)
+	}
+	bad := good
+	bad.Rank = 5 // encoding no longer matches
+	raw, _ = json.Marshal(bad)
+	c.Set(ctx, l.Meta(3), raw, 0)
+	if _, err := rd.Resolve(ctx); err == nil || !strings.Contains(err.Error(), "encoding") {
+		t.Fatalf("inconsistent meta: %v", err)
+	}
+}
