@@ -43,6 +43,29 @@ func (a *ackCheck) Commit(ctx context.Context, p stream.Position) error {
 	return a.Source.Commit(ctx, p)
 }
 
+// holdEOF turns the wrapped source's io.EOF into empty batches until release
+// is set.
+type holdEOF struct {
+	stream.Source
+	release atomic.Bool
+	last    stream.Position
+	empty   stream.Batch
+}
+
+func (h *holdEOF) Next(ctx context.Context) (*stream.Batch, error) {
+	b, err := h.Source.Next(ctx)
+	if err == io.EOF && !h.release.Load() {
+		time.Sleep(time.Millisecond)
+		h.empty.Reset()
+		h.empty.Pos = h.last
+		return &h.empty, nil
+	}
+	if err == nil {
+		h.last = b.Pos.Clone()
+	}
+	return b, err
+}
+
 // durableStore records which positions are durable after Append returns.
 type durableStore struct {
 	*checkpoint.Store
@@ -107,7 +130,11 @@ func TestTrainerRecoversExactly(t *testing.T) {
 	if _, _, err := store.Recover(m.ApplyRecord); err != nil {
 		t.Fatal(err)
 	}
-	ack := &ackCheck{Source: sc, t: t, durable: map[int64]bool{}}
+	// The scenario may end before a snapshot on a slow disk completes; hold
+	// the end back (with empty batches, as an idle source gives) until one
+	// has been committed.
+	held := &holdEOF{Source: sc}
+	ack := &ackCheck{Source: held, t: t, durable: map[int64]bool{}}
 	ds := &durableStore{Store: store, ack: ack}
 	var snaps []online.SnapshotStats
 	var snapMu sync.Mutex
@@ -119,6 +146,7 @@ func TestTrainerRecoversExactly(t *testing.T) {
 			snapMu.Lock()
 			snaps = append(snaps, s)
 			snapMu.Unlock()
+			held.release.Store(true)
 		},
 	})
 	if err != nil {
