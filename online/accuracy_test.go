@@ -248,3 +248,129 @@ func TestNoiseFloorAndSubspace(t *testing.T) {
 		t.Errorf("largest principal angle %.3f° > 10°", worst)
 	}
 }
+
+// TestShiftAlarm checks the Page-Hinkley detector (E. S. Page, "Continuous
+// inspection schemes", Biometrika 41(1/2), 1954) on the scenario's planted
+// taste shift: at event S every listener's community vector is replaced by
+// the next community's, which raises the expected squared error of a model
+// that knows the old tastes by ShiftLoss() (stream.Scenario.ShiftLoss).
+//
+// The monitor feeds PH the normalised squared error x = ((r − r̂)/W)², W the
+// width of the monitor's rating scale, clipped to 1. Its planted rise is
+// therefore Δ = ShiftLoss()/W² (ratings are unclipped, so ShiftLoss is the
+// exact rise for a predictor with the old truth; x's clip at 1 needs
+// |r − r̂| > W = 4, more than 3 standard deviations of the post-shift error,
+// and lowers Δ by well under 1%).
+//
+// Detection delay: after a step of Δ in the mean of x, each sample adds
+// x_t − x̄_t − δ ≈ Δ − δ to m_t in expectation (x̄_t, a mean over hundreds of
+// thousands of samples, barely moves), while M_t stays at the minimum reached
+// just before the step. So m_t − M_t crosses λ after about λ/(Δ − δ) samples;
+// the test allows twice that. x̄_t also holds the higher losses of warm-up,
+// which makes x_t − x̄_t a little smaller after the step than Δ: part of what
+// the factor 2 covers, as does the model adapting to the new tastes.
+//
+// Measured (seed 3): planted Δ = 0.0867, measured Δ = 0.0759, first alarm
+// 741 events after S against λ/(Δ − δ) = 612 and the bound 1223; seeds 1–6
+// gave delays of 1.2–1.35 × λ/(Δ − δ) and no alarm at all before S.
+//
+// 500 listeners and 100 shows so that 400,000 events are enough for the
+// model to reach its floor (RMSE about 0.54 against σ = 0.5 before S).
+//
+// Quiet window: no alarm in the 100,000 events before S. The model has by
+// then seen 300,000 events with no arrivals after event 100,000, so its loss
+// is flat or falling, and PH only alarms on a rise.
+func TestShiftAlarm(t *testing.T) {
+	const (
+		shiftAt  = 400_000
+		quiet    = 100_000 // events before the shift that must raise no alarm
+		after    = 20_000  // events generated after the shift
+		arrivals = 100_000
+		delta    = 0.005 // PH δ, λ, n_min: the monitor defaults, set explicitly
+		lambda   = 50.0
+		nMin     = 30
+		// A 4-point-wide normalisation scale, as 1..5 stars; the planted mean
+		// is 3.5, so the ratings (standard deviation about 1.1) mostly fall in it.
+		minV, maxV = 1.0, 5.0
+	)
+	sc, err := stream.NewScenario(stream.ScenarioOptions{
+		Seed:          3,
+		Events:        shiftAt + after,
+		Rank:          8,
+		ArrivalsUntil: arrivals,
+		Noise:         0.5,
+		SNR:           4,
+		ShiftAt:       shiftAt,
+		Listeners:     500,
+		Shows:         100,
+	}, stream.Position{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	// The model's own clipping scale is wide, so predictions are never
+	// clipped (ratings are unbounded); only the monitor uses 1..5.
+	m, err := New(Options{Rank: 8, MinValue: -20, MaxValue: 30, Seed: 5,
+		LearnRate: 0.02, BiasLearnRate: 0.01, Reg: 0.01, BiasReg: 0.01})
+	if err != nil {
+		t.Fatal(err)
+	}
+	mon, err := NewMonitor(MonitorOptions{MinValue: minV, MaxValue: maxV, Delta: delta, Lambda: lambda, MinSamples: nMin})
+	if err != nil {
+		t.Fatal(err)
+	}
+	w := maxV - minV
+	dPlanted := sc.ShiftLoss() / (w * w)
+	bound := 2 * lambda / (dPlanted - delta)
+
+	var alarms []int64
+	var prevSq float64
+	var lossBefore, lossAfter float64 // sums of x over the quiet window and the 1,000 events after S
+	const afterN = 1000
+	accRun(t, sc, m, mon, func(i int64, alarm bool) {
+		if alarm {
+			alarms = append(alarms, i)
+		}
+		// x of this event, recomputed from the monitor's running total of e².
+		sq := mon.Status().SquaredErrorTotal
+		e2 := sq - prevSq
+		prevSq = sq
+		x := min(e2/(w*w), 1)
+		switch {
+		case i >= shiftAt-quiet && i < shiftAt:
+			lossBefore += x
+		case i >= shiftAt && i < shiftAt+afterN:
+			lossAfter += x
+		}
+	})
+	dMeasured := lossAfter/afterN - lossBefore/quiet
+	t.Logf("ShiftLoss %.4f, W = %g: planted Δ = %.5f; measured Δ = %.5f (mean x %.5f before S, %.5f in the %d events after)",
+		sc.ShiftLoss(), w, dPlanted, dMeasured, lossBefore/quiet, lossAfter/afterN, afterN)
+	t.Logf("alarms at events %v; shift at %d; bound 2λ/(Δ−δ) = %.0f events", alarms, shiftAt, bound)
+	if !(dPlanted > 2*delta) {
+		t.Fatalf("planted Δ = %.5f too small against δ = %g for the test to mean anything", dPlanted, delta)
+	}
+	// The measured rise should be the planted one, a little lower: the model
+	// adapts during the 1,000 events, and its errors before S are not all
+	// noise. Measured over seeds 1–6: 0.86 … 0.92 of the planted Δ; the
+	// sampling error of the 1,000-event mean is about 4% of Δ.
+	if r := dMeasured / dPlanted; r < 0.75 || r > 1.10 {
+		t.Errorf("measured Δ %.5f is %.2f× the planted Δ %.5f, want 0.75 … 1.10", dMeasured, r, dPlanted)
+	}
+	first := int64(-1)
+	for _, a := range alarms {
+		if a >= shiftAt-quiet && a < shiftAt {
+			t.Errorf("false alarm at event %d, in the %d events before the shift at %d", a, quiet, shiftAt)
+		}
+		if a >= shiftAt && first < 0 {
+			first = a
+		}
+	}
+	if first < 0 {
+		t.Fatalf("no alarm in the %d events after the shift", after)
+	}
+	delay := first - shiftAt + 1 // events seen since the shift, the alarming one included
+	t.Logf("first alarm after the shift: event %d, delay %d events (expected about λ/(Δ−δ) = %.0f)", first, delay, lambda/(dPlanted-delta))
+	if float64(delay) > bound { // Page 1954: m_t − M_t grows by about Δ − δ per event after the step
+		t.Errorf("alarm %d events after the shift, more than 2λ/(Δ−δ) = %.0f", delay, bound)
+	}
+}
