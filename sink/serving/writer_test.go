@@ -150,3 +150,27 @@ func closeQuick(w *Writer) {
 	defer cancel()
 	_ = w.Close(ctx)
 }
+
+// BenchmarkOffer measures the trainer-side hand-off: coalescing 1,000 rows of
+// rank 64 into the pending table (no Redis involved).
+func BenchmarkOffer(b *testing.B) {
+	w, err := New(Options{Addrs: []string{"127.0.0.1:1"}, Mode: online.Explicit, FlushInterval: time.Hour})
+	if err != nil {
+		b.Fatal(err)
+	}
+	defer closeQuick(w)
+	rs := new(online.RowSet)
+	rs.Reset(64)
+	vec := make([]float32, 64)
+	for r := range int32(1000) {
+		rs.Append(online.RowRecord{Side: online.Side(r & 1), Row: r, ID: []byte("listener-" + string(rune('a'+r%26))), Vec: vec})
+	}
+	meta := &online.Meta{Rank: 64, Mode: "explicit"}
+	w.Offer(rs, meta)
+	b.ReportAllocs()
+	b.ResetTimer()
+	for range b.N {
+		w.Offer(rs, meta)
+	}
+	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N*1000), "ns/row")
+}
