@@ -146,8 +146,8 @@ type Kafka struct {
 	Brokers []string `yaml:"brokers"`
 	Topic   string   `yaml:"topic"`
 	Group   string   `yaml:"group"`
-	// DeadLetterTopic receives rejected records; "" keeps them in the local
-	// rejects file only.
+	// DeadLetterTopic receives rejected records with their reasons; "" means
+	// the events topic's name followed by ".rejects".
 	DeadLetterTopic string `yaml:"dead_letter_topic"`
 	// Start is where a model with no checkpoint starts reading when the group
 	// has no committed offset: "earliest" or "latest".

@@ -89,7 +89,7 @@
 //	kafka.brokers                        []               bootstrap host:port list (required for kind kafka)
 //	kafka.topic                          ""               topic to consume (required for kind kafka)
 //	kafka.group                          freshet          consumer group
-//	kafka.dead_letter_topic              ""               topic for rejected records; "" = local file only
+//	kafka.dead_letter_topic              ""               topic for rejected records; "" = TOPIC.rejects
 //	kafka.start                          earliest         earliest or latest, for a new model and group
 //	kafka.min_bytes                      1                fetch minimum bytes
 //	kafka.max_bytes                      10485760         fetch maximum bytes

@@ -26,6 +26,8 @@ Usage:
   freshet replay   -file FILE [-config FILE] [-curve OUT.csv] [-every N]
                                                          evaluate a file offline, test-then-train
   freshet generate [-config FILE] [-events N] [-o FILE]   write the demo scenario as JSON lines
+  freshet feed     [-config FILE] [-file F] [-rate R] [-events N] [-for D]
+                                                         send the demo (or a file) to the Kafka topic
 
 Run 'freshet COMMAND -h' for a command's flags.
 `
@@ -44,6 +46,8 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return runReplay(ctx, rest, stdout, stderr)
 	case "generate":
 		return runGenerate(ctx, rest, stdout, stderr)
+	case "feed":
+		return runFeed(ctx, rest, stdout, stderr)
 	case "-h", "-help", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return nil
@@ -121,7 +125,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		stop() // restore default handling: the next signal kills
 	}()
 
-	d, err := openDaemon(cfg, log)
+	d, err := openDaemon(ctx, cfg, log)
 	if err != nil {
 		return err
 	}
@@ -160,7 +164,7 @@ func (d *daemon) close() {
 
 // openDaemon opens the data directory, recovers the newest durable state,
 // and builds the source at the recovered position.
-func openDaemon(cfg *config.Config, log *zap.Logger) (_ *daemon, err error) {
+func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *daemon, err error) {
 	d := &daemon{}
 	defer func() {
 		if err != nil {
@@ -185,7 +189,12 @@ func openDaemon(cfg *config.Config, log *zap.Logger) (_ *daemon, err error) {
 	if resume != nil {
 		from = resume.Position
 	}
-	if d.source, err = newSource(cfg, from, d.rejects); err != nil {
+	if cfg.Source.Kind == "kafka" {
+		d.source, err = newKafkaSource(ctx, cfg, from, log)
+	} else {
+		d.source, err = newSource(cfg, from, d.rejects)
+	}
+	if err != nil {
 		return nil, err
 	}
 	to := trainerOptions(cfg)
