@@ -728,6 +728,24 @@ func (s *Source) Lag() []PartitionLag {
 	return out
 }
 
+// LagSummary formats Lag for a progress log line: "partition:lag" pairs,
+// space-separated, with the total first ("total 120 0:100 1:20").
+func (s *Source) LagSummary() string {
+	lags := s.Lag()
+	var total int64
+	for _, l := range lags {
+		total += l.Lag
+	}
+	b := strconv.AppendInt([]byte("total "), total, 10)
+	for _, l := range lags {
+		b = append(b, ' ')
+		b = strconv.AppendInt(b, int64(l.Partition), 10)
+		b = append(b, ':')
+		b = strconv.AppendInt(b, l.Lag, 10)
+	}
+	return string(b)
+}
+
 // Assignment returns the current generation's ID (-1 before the first) and
 // the partitions it assigned to this source, sorted.
 func (s *Source) Assignment() (generation int32, partitions []int32) {
