@@ -217,8 +217,23 @@ func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *da
 // recoverState loads the newest durable cut into model and monitor and
 // returns its meta (nil for a new model).
 func recoverState(store *checkpoint.Store, m *online.Model, mon *online.Monitor, log *zap.Logger) (*online.Meta, error) {
-	meta, info, err := store.Recover(m.ApplyRecord)
+	// The rows come before the meta that names the rank: a row of another
+	// rank is the same configuration mistake as the rank check below, not
+	// a damaged file.
+	heldRank := 0
+	apply := func(rec *online.RowRecord) error {
+		if !rec.Deleted && len(rec.Vec) != m.Rank() {
+			heldRank = len(rec.Vec)
+			return errors.New("rank mismatch")
+		}
+		return m.ApplyRecord(rec)
+	}
+	meta, info, err := store.Recover(apply)
 	if err != nil {
+		if heldRank != 0 {
+			return nil, usagef("data directory holds a model of rank %d; the configuration asks for rank %d (use another data directory)",
+				heldRank, m.Rank())
+		}
 		return nil, fmt.Errorf("recover checkpoint: %w", err)
 	}
 	if info.TornBytes > 0 {
@@ -232,7 +247,7 @@ func recoverState(store *checkpoint.Store, m *online.Model, mon *online.Monitor,
 		return nil, nil
 	}
 	if meta.Rank != m.Rank() || meta.Mode != m.Options().Mode.String() {
-		return nil, usagef("data directory holds a %s model of rank %d; the configuration asks for %s rank %d (use another data directory)",
+		return nil, usagef("data directory holds an %s model of rank %d; the configuration asks for %s rank %d (use another data directory)",
 			meta.Mode, meta.Rank, m.Options().Mode, m.Rank())
 	}
 	if err := m.Restore(meta.Model); err != nil {
