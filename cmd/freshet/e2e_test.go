@@ -212,3 +212,34 @@ func fileSize(t *testing.T, path string) int64 {
 	}
 	return fi.Size()
 }
+
+// TestModelMismatchRefused restarts a data directory with another rank and
+// another mode: both are configuration mistakes (exit 2) that name what the
+// directory holds, and the directory is left as it was.
+func TestModelMismatchRefused(t *testing.T) {
+	dir := t.TempDir()
+	env := demoEnv(5000, 0)
+	_, _, stopped := runToEnd(t, dir, env)
+	for name, over := range map[string][2]string{
+		"rank": {"FRESHET_MODEL_RANK", "16"},
+		"mode": {"FRESHET_MODEL_MODE", "implicit"},
+	} {
+		t.Run(name, func(t *testing.T) {
+			e := demoEnv(5000, 0)
+			e[over[0]] = over[1]
+			p := start(t, e, "run", "-data", dir)
+			code, sig := p.wait(procTimeout)
+			msg := p.stderrText()
+			if code != 2 || sig {
+				t.Fatalf("exit code %d (signaled %v), want 2:\n%s", code, sig, msg)
+			}
+			if !strings.Contains(msg, "data directory holds") || !strings.Contains(msg, "rank 8") || !strings.Contains(msg, over[1]) {
+				t.Fatalf("message does not say what the directory holds and what was asked:\n%s", msg)
+			}
+		})
+	}
+	d := recoverDir(t, dir, env)
+	if d.meta.Counts.Applied != stopped.uint(t, "events") {
+		t.Fatalf("the refused runs changed the directory: %d events, stopped at %d", d.meta.Counts.Applied, stopped.uint(t, "events"))
+	}
+}

@@ -4,6 +4,9 @@ import (
 	"bytes"
 	"math"
 	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"slices"
 	"syscall"
 	"testing"
 	"time"
@@ -29,19 +32,41 @@ import (
 // resumed run applies each of them exactly once to exactly the state the
 // uninterrupted run had at that point. The scenario is deterministic from its
 // position, batches start at the same event indices (every cut is at a batch
-// boundary and batches are full), explicit-mode SGD draws no random numbers
-// after a row is created, and the cut holds the row init generator, the global
-// mean and the monitor's state. Only the wall-clock parts differ (rates,
-// number of cuts), and those are not compared.
+// boundary and batches are full), and the cut holds everything else the
+// steps depend on: the row init generator, the negative sampler's generator
+// and its reservoir (implicit mode), the global mean and the monitor's state.
+// Only the wall-clock parts differ (rates, number of cuts, snapshots), and
+// those are not compared. Implicit mode runs with recall sampling off, since
+// that sampling is paced by the wall clock (it changes the monitor, not the
+// model).
+//
+// The kill points are seeded, but where a delay lands in the run depends on
+// the machine's speed, so the event counts differ from run to run.
 func TestKillRecovery(t *testing.T) {
-	// N is sized so that a run lasts about a second or more, long enough
-	// to be killed at a random point (unpaced: ~1.4 M events/s plain, ~75 k
-	// under -race on this machine).
-	n := uint64(3000000)
-	if raceEnabled {
-		n = 150000
-	}
-	env := demoEnv(int(n), 0)
+	// N is sized so that a run lasts a second or more, long enough to be
+	// killed at a random point and to take a snapshot (unpaced on this
+	// machine: explicit ~1.4 M events/s plain, ~75 k under -race; implicit
+	// with 3 negatives ~300 k plain).
+	t.Run("explicit", func(t *testing.T) {
+		n := 3000000
+		if raceEnabled {
+			n = 150000
+		}
+		killRecovery(t, demoEnv(n, 0), uint64(n), []string{"rmse", "mae", "rmse_window", "cold_share"})
+	})
+	t.Run("implicit", func(t *testing.T) {
+		n := 600000
+		if raceEnabled {
+			n = 40000
+		}
+		env := demoEnv(n, 0)
+		env["FRESHET_MODEL_MODE"] = "implicit"
+		env["FRESHET_MONITOR_RECALL_RATE"] = "0"
+		killRecovery(t, env, uint64(n), []string{"cold_share"})
+	})
+}
+
+func killRecovery(t *testing.T, env map[string]string, n uint64, compare []string) {
 	// Snapshots every second (the shortest allowed), so that a kill can
 	// land during one and recovery reads a snapshot plus the logs after it.
 	env["FRESHET_CHECKPOINT_SNAPSHOT_INTERVAL"] = "1s"
@@ -168,10 +193,34 @@ func TestKillRecovery(t *testing.T) {
 		t.Fatalf("no run was killed (the reference took %s): the scenario is too short for this machine", refElapsed)
 	}
 
+	// A torn tail on top of the last kill: junk after the newest log's
+	// last record (when the kill left a log at all). The final run must
+	// drop it (and anything the kill itself tore) and still end identical.
+	var junkLog string
+	var junkEnd int64
+	if logs, _ := filepath.Glob(filepath.Join(dir, "log-*.bin")); prev != nil && len(logs) > 0 {
+		junkLog = newestLog(t, dir)
+		f, err := os.OpenFile(junkLog, os.O_WRONLY|os.O_APPEND, 0)
+		if err != nil {
+			t.Fatal(err)
+		}
+		if _, err := f.Write([]byte("\x00\x00\x01torn")); err != nil {
+			t.Fatal(err)
+		}
+		f.Close()
+		junkEnd = fileSize(t, junkLog)
+	}
+
 	t1 := time.Now()
 	q, resumed, stop := runToEnd(t, dir, env)
 	if prev != nil {
 		check(resumed)
+	}
+	if junkLog != "" {
+		w, _ := q.mustLine(0, 0, "torn tail warning", msgIs("dropped torn log tail"))
+		if w.str("file") != filepath.Base(junkLog) || w.uint(t, "offset")+w.uint(t, "bytes") != uint64(junkEnd) || w.uint(t, "bytes") < 7 {
+			t.Fatalf("warning %s; want %s cut from %d bytes, at least the 7 appended", w.Raw, filepath.Base(junkLog), junkEnd)
+		}
 	}
 	if rec, _, ok := q.waitLine(0, 0, msgIs("recovered")); ok && rec.str("snapshot") != "" {
 		fromSnapshot++
@@ -187,7 +236,7 @@ func TestKillRecovery(t *testing.T) {
 
 	// The logged prequential figures of the final stop and the reference
 	// (full float64 precision in the JSON lines).
-	for _, k := range []string{"rmse", "mae", "rmse_window", "cold_share"} {
+	for _, k := range compare {
 		a, b := stop.float(t, k), refStop.float(t, k)
 		if math.Abs(a-b) > 1e-9*math.Abs(b) {
 			t.Errorf("%s: %.17g after the kills, %.17g uninterrupted", k, a, b)
@@ -205,7 +254,8 @@ func TestKillRecovery(t *testing.T) {
 		t.Errorf("monitor state differs:\n%s\n%s", got.meta.Monitor, want.meta.Monitor)
 	}
 	gm, wm := got.meta.Model, want.meta.Model
-	if gm.MeanSum != wm.MeanSum || gm.MeanComp != wm.MeanComp || gm.MeanN != wm.MeanN || gm.Next != wm.Next || !bytes.Equal(gm.RNG, wm.RNG) {
+	if gm.MeanSum != wm.MeanSum || gm.MeanComp != wm.MeanComp || gm.MeanN != wm.MeanN || gm.Next != wm.Next ||
+		!bytes.Equal(gm.RNG, wm.RNG) || !slices.Equal(gm.Recent, wm.Recent) {
 		t.Errorf("model meta differs: %+v vs %+v", gm, wm)
 	}
 	for s := online.Users; s <= online.Items; s++ {
