@@ -78,6 +78,9 @@ type TrainerOptions struct {
 	MaxRate float64
 	// OnAlarm, when set, is called for each drift alarm (after it is logged).
 	OnAlarm func(Alarm)
+	// ProgressFields, when set, adds fields to each progress line (the
+	// serving writer's state, say). It is called from the trainer goroutine.
+	ProgressFields func() []zap.Field
 	// OnErase, when set, is called after an erasure event is applied to the
 	// model, with the side and the ID (valid only during the call), so that
 	// copies outside the model (the rejects file) can be purged too.
@@ -99,6 +102,14 @@ type Alarm struct {
 	Event  uint64 // index of the event (Counts.Applied after it)
 	Time   int64  // model time (ms)
 	Status MonitorStatus
+}
+
+// A Purger is a Checkpointer that can delete every checkpoint file older
+// than its newest committed snapshot. After an erasure the trainer takes a
+// snapshot at once and purges when it is committed, so no retained file holds
+// the erased rows.
+type Purger interface {
+	Purge() error
 }
 
 // SnapshotStats describe one full snapshot.
@@ -168,6 +179,10 @@ type Trainer struct {
 	snap      cursor
 	snapStats SnapshotStats
 	snapStart time.Time
+	// purge is set by an erasure: the next snapshot starts at once, and once
+	// it is committed older checkpoint files are deleted (Purger).
+	purge     bool
+	snapPurge bool
 	lastSnap  time.Time
 	full      cursor
 	lastOffer time.Time
@@ -202,10 +217,20 @@ type groupEv struct {
 	ok         bool
 }
 
+// cursor walks both tables a chunk at a time, up to the row counts they had
+// when it started: rows created later reach the checkpoint log and the
+// publisher through their dirty marks, and chasing them could never end
+// while new IDs keep arriving.
 type cursor struct {
 	on   bool
 	side Side
 	row  int32
+	end  [2]int32
+}
+
+// newCursor starts a walk over the rows that exist now.
+func (t *Trainer) newCursor() cursor {
+	return cursor{on: true, end: [2]int32{t.m.Rows(Users), t.m.Rows(Items)}}
 }
 
 type jobKind uint8
@@ -223,6 +248,7 @@ type job struct {
 	meta  *Meta
 	stats SnapshotStats // jobCommit
 	start time.Time     // jobCommit: when the snapshot began
+	purge bool          // jobCommit: delete older checkpoint files after it
 }
 
 // NewTrainer checks o and returns a Trainer ready to Run.
@@ -445,6 +471,7 @@ func (t *Trainer) erase(ev *stream.Event) {
 	}
 	found := t.m.Erase(side, id)
 	t.counts.Erased++
+	t.purge = true
 	if t.o.OnErase != nil {
 		if err := t.o.OnErase(side, id); err != nil {
 			t.log.Error("erase outside the model", zap.Stringer("side", side), zap.Error(err))
@@ -561,11 +588,19 @@ func (t *Trainer) snapshotStep(now time.Time) {
 		if lb, ok := t.o.Checkpoint.(interface{ LogBytes() int64 }); ok && lb.LogBytes() >= t.o.SnapshotLogBytes {
 			due = true
 		}
-		if !due {
+		if !due && !t.purge {
 			return
 		}
+		if t.purge {
+			// The cut before the snapshot holds the erasure's Deleted
+			// record, so that record lands in a log the purge deletes.
+			t.flush(true)
+			t.purge, t.snapPurge = false, true
+		} else {
+			t.snapPurge = false
+		}
 		t.lastSnap = now
-		t.snap = cursor{on: true}
+		t.snap = t.newCursor()
 		t.snapStats = SnapshotStats{}
 		t.snapStart = now
 		t.jobs <- job{kind: jobBegin, meta: t.meta()}
@@ -593,7 +628,7 @@ func (t *Trainer) snapshotStep(now time.Time) {
 		t.flushedPos, t.flushedAny, t.lastFlushSeq, t.lastFlush = t.pos.Clone(), true, t.seq, t.o.now()
 		t.snapStats.Seq = meta.Seq
 		t.send(job{kind: jobAppend, rows: rs, meta: meta})
-		t.send(job{kind: jobCommit, meta: meta, stats: t.snapStats, start: t.snapStart})
+		t.send(job{kind: jobCommit, meta: meta, stats: t.snapStats, start: t.snapStart, purge: t.snapPurge})
 	}
 	if d := t.o.now().Sub(start); d > t.snapStats.StallMax {
 		t.snapStats.StallMax = d
@@ -608,7 +643,7 @@ func (t *Trainer) publishStep(now time.Time) {
 		return
 	}
 	if !t.full.on && p.WantFull() {
-		t.full = cursor{on: true}
+		t.full = t.newCursor()
 		t.log.Info("full publish started", zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
 	}
 	if t.full.on {
@@ -640,7 +675,7 @@ func (t *Trainer) publishStep(now time.Time) {
 // done=true once both sides are covered.
 func (t *Trainer) copyChunk(c *cursor) (rs *RowSet, done bool) {
 	for c.side <= Items {
-		end := t.m.Rows(c.side)
+		end := min(c.end[c.side], t.m.Rows(c.side))
 		if c.row >= end {
 			c.side++
 			c.row = 0
@@ -706,6 +741,9 @@ func (t *Trainer) writer() {
 			err = cp.WriteRows(j.rows)
 		case jobCommit:
 			err = cp.Commit(j.meta)
+			if p, ok := cp.(Purger); ok && err == nil && j.purge {
+				err = p.Purge()
+			}
 			if err == nil {
 				st := j.stats
 				st.Took = t.o.now().Sub(j.start)
@@ -819,6 +857,9 @@ func (t *Trainer) progress(now time.Time, msg string) {
 	)
 	if l, ok := t.src.(interface{ LagSummary() string }); ok {
 		fields = append(fields, zap.String("lag", l.LagSummary()))
+	}
+	if t.o.ProgressFields != nil {
+		fields = append(fields, t.o.ProgressFields()...)
 	}
 	t.stallMax = 0
 	t.log.Info(msg, fields...)

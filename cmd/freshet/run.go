@@ -10,12 +10,14 @@ import (
 	"os/signal"
 	"path/filepath"
 	"syscall"
+	"time"
 
 	"go.uber.org/zap"
 
 	"freshet.dev/freshet/config"
 	"freshet.dev/freshet/online"
 	"freshet.dev/freshet/sink/checkpoint"
+	"freshet.dev/freshet/sink/serving"
 	"freshet.dev/freshet/stream"
 )
 
@@ -142,6 +144,7 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 // daemon is the wired pipeline: source -> trainer (model, monitor) ->
 // checkpoint store.
 type daemon struct {
+	writer  *serving.Writer
 	store   *checkpoint.Store
 	rejects *stream.RejectFile
 	source  stream.Source
@@ -151,6 +154,13 @@ type daemon struct {
 }
 
 func (d *daemon) close() {
+	if d.writer != nil {
+		// The trainer handed over its last rows; give Redis a bounded
+		// time to take them (they are in the local checkpoint anyway).
+		ctx, cancel := context.WithTimeout(context.Background(), 10*time.Second)
+		d.writer.Close(ctx)
+		cancel()
+	}
 	if d.source != nil {
 		d.source.Close()
 	}
@@ -182,6 +192,22 @@ func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *da
 	if err != nil {
 		return nil, err
 	}
+	var so serving.Options
+	if cfg.Redis.Enabled {
+		if so, err = servingOptions(cfg, d.model.Options().Mode, log.Named("redis")); err != nil {
+			return nil, err
+		}
+		if resume == nil {
+			// No local checkpoint: a new machine may restore from the
+			// serving copy and resume from the position it reflects.
+			rctx, cancel := context.WithTimeout(ctx, 5*time.Minute)
+			resume, so.Adopt, err = restoreFromRedis(rctx, so, d.store, d.model, d.monitor, log)
+			cancel()
+			if err != nil {
+				return nil, err
+			}
+		}
+	}
 	if d.rejects, err = stream.OpenRejectFile(filepath.Join(cfg.DataDir, "rejects.jsonl")); err != nil {
 		return nil, err
 	}
@@ -207,6 +233,17 @@ func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *da
 	}
 	if cfg.Source.Kind == "scenario" {
 		to.MaxRate = cfg.Source.Scenario.Rate
+	}
+	if cfg.Redis.Enabled {
+		so.OnChange = func(st serving.Status) {
+			log.Info("redis status", zap.Bool("degraded", st.Degraded), zap.Uint64("version", st.Version),
+				zap.Int("pending", st.Pending), zap.String("error", st.LastError))
+		}
+		if d.writer, err = serving.New(so); err != nil {
+			return nil, asUsage(err)
+		}
+		to.Publisher = d.writer
+		to.ProgressFields = servingFields(d.writer)
 	}
 	if d.trainer, err = online.NewTrainer(to); err != nil {
 		return nil, err

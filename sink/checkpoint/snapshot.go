@@ -206,7 +206,22 @@ func (s *Store) Commit(meta *online.Meta) error {
 // prune deletes snapshots beyond the newest Keep and the logs older than the
 // oldest kept snapshot. A failure is logged, not returned: the new snapshot
 // is already durable and recovery ignores leftovers.
-func (s *Store) prune() {
+func (s *Store) prune() { s.pruneKeeping(s.keep) }
+
+// Purge deletes every snapshot but the newest and every log older than it,
+// whatever Keep says: after a privacy erasure, once a snapshot taken after
+// it is committed, no file in the directory holds the erased rows or the
+// log record that named the erased ID (the newest snapshot keeps only a
+// digest of it). It is a no-op without a committed snapshot.
+func (s *Store) Purge() error {
+	if s.closed {
+		return ErrClosed
+	}
+	s.pruneKeeping(1)
+	return nil
+}
+
+func (s *Store) pruneKeeping(keep int) {
 	l, err := s.list()
 	if err != nil {
 		s.log.Warn("prune: list directory", zap.Error(err))
@@ -215,7 +230,7 @@ func (s *Store) prune() {
 	if len(l.snaps) == 0 {
 		return
 	}
-	cut := len(l.snaps) - s.keep
+	cut := len(l.snaps) - keep
 	if cut < 0 {
 		cut = 0
 	}
