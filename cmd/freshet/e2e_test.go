@@ -1,8 +1,11 @@
 package main
 
 import (
+	"bytes"
 	"fmt"
+	"math"
 	"os"
+	"path/filepath"
 	"strings"
 	"syscall"
 	"testing"
@@ -242,4 +245,61 @@ func TestModelMismatchRefused(t *testing.T) {
 	if d.meta.Counts.Applied != stopped.uint(t, "events") {
 		t.Fatalf("the refused runs changed the directory: %d events, stopped at %d", d.meta.Counts.Applied, stopped.uint(t, "events"))
 	}
+}
+
+// TestFileSourceDaemon runs the daemon on the shared ratings file: it ends by
+// itself with the counts a replay gives (the same events, test-then-train, so
+// the same prequential RMSE), sets the bad records aside once in the data
+// directory's rejects file, and a restart resumes at the end of the file
+// without reading or rejecting anything again.
+func TestFileSourceDaemon(t *testing.T) {
+	file, err := filepath.Abs(filepath.Join(eventsDir, "podcast-ratings-seed1.jsonl"))
+	if err != nil {
+		t.Fatal(err)
+	}
+	bad, total := badValueLines(t, file, 1, 5)
+	dir := t.TempDir()
+	env := map[string]string{"FRESHET_SOURCE_KIND": "file", "FRESHET_SOURCE_FILE_PATH": file}
+	_, _, stopped := runToEnd(t, dir, env)
+	if got := stopped.uint(t, "events"); got != uint64(total)-uint64(len(bad)) {
+		t.Fatalf("applied %d, want %d", got, uint64(total)-uint64(len(bad)))
+	}
+	if got := stopped.uint(t, "rejected"); got != uint64(len(bad)) {
+		t.Fatalf("rejected %d, want %d", got, len(bad))
+	}
+	wantPos := fmt.Sprintf("file %s line %d offset %d", file, total+1, fileSize(t, file))
+	if got := stopped.str("position"); got != wantPos {
+		t.Fatalf("stopped at %q, want %q", got, wantPos)
+	}
+	rejects := filepath.Join(dir, "rejects.jsonl")
+	if n := countLines(t, rejects); n != len(bad) {
+		t.Fatalf("rejects file has %d lines, want %d", n, len(bad))
+	}
+
+	// The replay of the same file: its curve's last row (every boundary,
+	// 8 significant digits) is the daemon's final fading RMSE.
+	curve := filepath.Join(t.TempDir(), "curve.csv")
+	summary(t, "replay", "-file", file, "-curve", curve, "-every", "1")
+	rows := readCurve(t, curve)
+	last := rows[len(rows)-1]
+	if r := stopped.float(t, "rmse"); math.Abs(r-last[1]) > 1e-7*last[1] {
+		t.Fatalf("daemon RMSE %.10g, replay %.10g", r, last[1])
+	}
+
+	p, resumed, stopped2 := runToEnd(t, dir, env)
+	if resumed.Fields == nil || resumed.str("position") != wantPos || stopped2.uint(t, "events") != stopped.uint(t, "events") {
+		t.Fatalf("restart: resumed %q, stopped %q; log:\n%s", resumed.Raw, stopped2.Raw, p.dump())
+	}
+	if n := countLines(t, rejects); n != len(bad) {
+		t.Fatalf("rejects file has %d lines after the restart, want %d", n, len(bad))
+	}
+}
+
+func countLines(t *testing.T, path string) int {
+	t.Helper()
+	raw, err := os.ReadFile(path)
+	if err != nil {
+		t.Fatal(err)
+	}
+	return bytes.Count(raw, []byte{'\n'})
 }
