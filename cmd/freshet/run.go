@@ -30,6 +30,8 @@ Usage:
   freshet generate [-config FILE] [-events N] [-o FILE]   write the demo scenario as JSON lines
   freshet feed     [-config FILE] [-file F] [-rate R] [-events N] [-for D]
                                                          send the demo (or a file) to the Kafka topic
+  freshet show     -user ID [-n 10] [-candidates all|ID,...] [-config FILE]   a user's vector and top-N from Redis
+  freshet erase    (-user ID | -item ID) [-file F] [-config FILE]   send an erasure event (Kafka, or append to F)
 
 Run 'freshet COMMAND -h' for a command's flags.
 `
@@ -50,6 +52,10 @@ func run(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 		return runGenerate(ctx, rest, stdout, stderr)
 	case "feed":
 		return runFeed(ctx, rest, stdout, stderr)
+	case "show":
+		return runShow(ctx, rest, stdout, stderr)
+	case "erase":
+		return runErase(ctx, rest, stdout, stderr)
 	case "-h", "-help", "--help", "help":
 		fmt.Fprint(stdout, usage)
 		return nil
