@@ -17,9 +17,9 @@ import (
 	"github.com/redis/go-redis/v9/maintnotifications"
 
 	"freshet.dev/freshet/config"
+	"freshet.dev/freshet/sink/serving/reader"
 	"freshet.dev/freshet/stream"
 	"freshet.dev/freshet/stream/kafka"
-	"freshet.dev/freshet/sink/serving/reader"
 )
 
 // runShow prints a user's vector from the current Redis version and the top-N
