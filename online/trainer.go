@@ -126,6 +126,28 @@ type SnapshotStats struct {
 	Took time.Duration
 }
 
+// TrainerStatus is a snapshot of a running trainer, published at batch
+// boundaries (at most every 100 ms) for health checks, a status page and
+// metrics. Plain data.
+type TrainerStatus struct {
+	Running  bool            `json:"running"`  // Run has started and not returned
+	Draining bool            `json:"draining"` // the drain has begun
+	Seq      uint64          `json:"seq"`      // newest cut taken
+	Durable  uint64          `json:"durable"`  // newest cut made durable
+	Commits  uint64          `json:"commits"`  // positions acknowledged to the source
+	Position stream.Position `json:"position"`
+	Time     int64           `json:"time"` // model time, ms
+	Counts   Counts          `json:"counts"`
+	Users    int             `json:"users"`
+	Items    int             `json:"items"`
+	// EventsPerS is the rate over the last progress interval.
+	EventsPerS   float64       `json:"events_per_s"`
+	DriftAlarms  uint64        `json:"drift_alarms"`
+	Monitor      MonitorStatus `json:"monitor"`
+	LastSnapshot SnapshotStats `json:"last_snapshot"`
+	Updated      time.Time     `json:"updated"`
+}
+
 // Trainer owns the model's tables and drives them from a Source: for each
 // event it scores, then learns (test-then-train), and at batch boundaries it
 // hands copies of changed rows to the checkpoint writer and the publisher.
@@ -199,6 +221,13 @@ type Trainer struct {
 	// pacing
 	paceStart  time.Time
 	paceEvents uint64
+
+	// status
+	status     atomic.Pointer[TrainerStatus]
+	lastStatus time.Time
+	lastRate   float64
+	durable    atomic.Uint64
+	lastSnapSt atomic.Pointer[SnapshotStats]
 
 	// progress
 	lastProg       time.Time
@@ -336,6 +365,7 @@ func (t *Trainer) Run(ctx context.Context) error {
 			zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
 	}
 
+	t.publishStatus(now, false)
 	var runErr error
 	for {
 		if ctx.Err() != nil {
@@ -364,6 +394,12 @@ func (t *Trainer) Run(ctx context.Context) error {
 
 // drain makes the final cut durable, acknowledges it and stops the writer.
 func (t *Trainer) drain() error {
+	t.publishStatus(t.o.now(), true)
+	defer func() {
+		st := *t.status.Load()
+		st.Running = false
+		t.status.Store(&st)
+	}()
 	if t.writerErr() == nil {
 		t.flush(true)
 	}
@@ -383,7 +419,42 @@ func (t *Trainer) drain() error {
 		p.Offer(rs, t.meta())
 	}
 	t.progress(t.o.now(), "stopped")
+	t.publishStatus(t.o.now(), true)
 	return err
+}
+
+// publishStatus stores a fresh TrainerStatus for Status.
+func (t *Trainer) publishStatus(now time.Time, draining bool) {
+	t.lastStatus = now
+	st := &TrainerStatus{
+		Running:     true,
+		Draining:    draining,
+		Seq:         t.seq,
+		Durable:     t.durable.Load(),
+		Commits:     t.commits,
+		Position:    t.pos.Clone(),
+		Time:        t.time,
+		Counts:      t.counts,
+		Users:       t.m.Live(Users),
+		Items:       t.m.Live(Items),
+		EventsPerS:  t.lastRate,
+		DriftAlarms: t.alarms,
+		Monitor:     t.mon.Status(),
+		Updated:     now,
+	}
+	if s := t.lastSnapSt.Load(); s != nil {
+		st.LastSnapshot = *s
+	}
+	t.status.Store(st)
+}
+
+// Status returns the newest published TrainerStatus (the zero value before
+// Run starts). Safe for concurrent use.
+func (t *Trainer) Status() TrainerStatus {
+	if st := t.status.Load(); st != nil {
+		return *st
+	}
+	return TrainerStatus{}
 }
 
 // apply scores and learns every event of b, in order. Events are resolved and
@@ -538,6 +609,9 @@ func (t *Trainer) afterBatch(ctx context.Context) error {
 
 	if now.Sub(t.lastProg) >= t.o.Progress {
 		t.progress(now, "progress")
+	}
+	if now.Sub(t.lastStatus) >= 100*time.Millisecond {
+		t.publishStatus(now, false)
 	}
 	if t.o.Curve != nil && t.counts.Applied >= t.nextCurve {
 		t.o.Curve(t.counts, t.mon.Status())
@@ -750,6 +824,7 @@ func (t *Trainer) writer() {
 				t.log.Info("snapshot written", zap.Uint64("seq", st.Seq), zap.Int("rows", st.Rows),
 					zap.Int("chunks", st.Chunks), zap.Duration("copy", st.CopyTime),
 					zap.Duration("stall_max", st.StallMax), zap.Duration("duration", st.Took))
+				t.lastSnapSt.Store(&st)
 				if t.o.OnSnapshot != nil {
 					t.o.OnSnapshot(st)
 				}
@@ -772,6 +847,7 @@ func (t *Trainer) writer() {
 			t.werr = fmt.Errorf("checkpoint: %w", err)
 		} else if j.kind == jobAppend {
 			t.acked = j.meta
+			t.durable.Store(j.meta.Seq)
 		}
 		t.ackMu.Unlock()
 	}
@@ -832,6 +908,9 @@ func (t *Trainer) progress(now time.Time, msg string) {
 		rate = float64(t.counts.Applied-t.lastProgEvents) / el
 	}
 	t.lastProg, t.lastProgEvents = now, t.counts.Applied
+	if msg != "stopped" {
+		t.lastRate = rate
+	}
 	st := t.mon.Status()
 	fields := []zap.Field{
 		zap.Uint64("events", t.counts.Applied),

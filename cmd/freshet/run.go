@@ -137,6 +137,16 @@ func runDaemon(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err != nil {
 		return err
 	}
+	if cfg.HTTP.Listen != "" {
+		// The HTTP server stops last, so the final state can be scraped
+		// during the drain (deferred calls run in reverse).
+		_, stopHTTP, err := serveHTTP(cfg.HTTP.Listen, d, log.Named("http"))
+		if err != nil {
+			d.close()
+			return err
+		}
+		defer stopHTTP()
+	}
 	defer d.close()
 	log.Info("started", zap.String("data", cfg.DataDir), zap.String("source", cfg.Source.Kind),
 		zap.String("mode", cfg.Model.Mode), zap.Int("rank", cfg.Model.Rank))

@@ -746,6 +746,15 @@ func (s *Source) LagSummary() string {
 	return string(b)
 }
 
+// LagPartitions returns Lag as parallel slices of partitions and lags.
+func (s *Source) LagPartitions() (partitions []int32, lags []int64) {
+	for _, l := range s.Lag() {
+		partitions = append(partitions, l.Partition)
+		lags = append(lags, l.Lag)
+	}
+	return partitions, lags
+}
+
 // Assignment returns the current generation's ID (-1 before the first) and
 // the partitions it assigned to this source, sorted.
 func (s *Source) Assignment() (generation int32, partitions []int32) {
