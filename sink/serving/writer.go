@@ -5,7 +5,7 @@
 // Restore reads the current version back for a daemon with no local
 // checkpoint. The key layout and value encoding are defined (and documented
 // as a contract) in package reader, which ranking services import; see
-// CONTRACT.md beside this file.
+// the README ("Serving from Redis").
 //
 // # Threading
 //
