@@ -400,6 +400,16 @@ func (t *Trainer) drain() error {
 		st.Running = false
 		t.status.Store(&st)
 	}()
+	// An erasure's snapshot (and the purge after its commit) must not be
+	// abandoned: a restart would not know that older files still hold the
+	// erased rows. Finish it here, first any snapshot in progress before it.
+	for t.writerErr() == nil && (t.purge || (t.snap.on && t.snapPurge)) {
+		if t.snap.on && t.pendingChunks.Load() >= 2 {
+			time.Sleep(time.Millisecond) // the writer is behind
+			continue
+		}
+		t.snapshotStep(t.o.now())
+	}
 	if t.writerErr() == nil {
 		t.flush(true)
 	}
