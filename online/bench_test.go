@@ -177,7 +177,7 @@ func BenchmarkKernels(b *testing.B) {
 		for _, v := range []struct {
 			name string
 			kern kernels
-		}{{"ref", refKernels}, {"unrolled", kernels{dotUnrolled, updateUnrolled}}, {"fast", fastKernels}} {
+		}{{"ref", refKernels}, {"unrolled", kernels{dot: dotUnrolled, update: updateUnrolled}}, {"fast", fastKernels}} {
 			b.Run(fmt.Sprintf("dot/k=%d/%s", k, v.name), func(b *testing.B) {
 				for b.Loop() {
 					sink += v.kern.dot(p, q)

@@ -94,14 +94,70 @@ func finiteCheck(v []float32) float32 {
 	return c
 }
 
-// kernels is a pair of inner loops; the Model holds the one it uses so
-// benchmarks can compare the reference loops with the fast ones.
-type kernels struct {
-	dot    func(a, b []float32) float32
-	update func(p, q []float32, a1, b1, a2, b2 float32) float32
+// smallSq bounds the squared factors for which an explicit update provably
+// stays finite (see Model.stepExplicit): a row whose every |x| ≤ 1e18 can take
+// a step with |γ·e| ≤ maxStepScale without leaving float32's range.
+const (
+	smallSq      = 1e36
+	maxStepScale = 1e18
+)
+
+// dotBoundRef returns dotRef(a, b) and whether every a[f]² and b[f]² is at
+// most smallSq. It is the plain-loop definition of dotBound.
+func dotBoundRef(a, b []float32) (float32, bool) {
+	b = b[:len(a)]
+	var s float32
+	small := true
+	for f, x := range a {
+		y := b[f]
+		s += x * y
+		small = small && x*x <= smallSq && y*y <= smallSq
+	}
+	return s, small
 }
 
+// kernels is a set of inner loops; the Model holds the one it uses so
+// benchmarks can compare the reference loops with the fast ones.
+//
+// dotBound is dot that also reports whether both rows are small enough for
+// updateFree, the update without a finiteness check, to be safe; a variant
+// may always report false (the reference does, so it always takes the
+// guarded path of copies and a checked update).
+type kernels struct {
+	dot        func(a, b []float32) float32
+	update     func(p, q []float32, a1, b1, a2, b2 float32) float32
+	dotBound   func(a, b []float32) (float32, bool)
+	updateFree func(p, q []float32, a1, b1, a2, b2 float32)
+}
+
+// dotNoBound is dotRef reporting no bound: the reference keeps the plain
+// guarded step.
+func dotNoBound(a, b []float32) (float32, bool) { return dotRef(a, b), false }
+
 var (
-	refKernels  = kernels{dot: dotRef, update: updateRef}
-	fastKernels = kernels{dot: dotFast, update: updateFast}
+	refKernels  = kernels{dot: dotRef, update: updateRef, dotBound: dotNoBound}
+	fastKernels = kernels{dot: dotFast, update: updateFast, dotBound: dotBoundFast, updateFree: updateFreeFast}
 )
+
+// dotBoundUnrolled is dotBoundRef with four accumulators, the squares'
+// maximum kept alongside.
+func dotBoundUnrolled(a, b []float32) (float32, bool) {
+	b = b[:len(a)]
+	var s0, s1, s2, s3, mx float32
+	f := 0
+	for ; f+4 <= len(a); f += 4 {
+		aa := a[f : f+4 : f+4]
+		bb := b[f : f+4 : f+4]
+		s0 += aa[0] * bb[0]
+		s1 += aa[1] * bb[1]
+		s2 += aa[2] * bb[2]
+		s3 += aa[3] * bb[3]
+		mx = max(mx, aa[0]*aa[0], aa[1]*aa[1], aa[2]*aa[2], aa[3]*aa[3],
+			bb[0]*bb[0], bb[1]*bb[1], bb[2]*bb[2], bb[3]*bb[3])
+	}
+	for ; f < len(a); f++ {
+		s0 += a[f] * b[f]
+		mx = max(mx, a[f]*a[f], b[f]*b[f])
+	}
+	return (s0 + s1) + (s2 + s3), mx <= smallSq
+}

@@ -92,3 +92,61 @@ func TestUpdateCheckFlagsOverflow(t *testing.T) {
 		t.Fatalf("finiteCheck = %v for finite values", c)
 	}
 }
+
+// dotBound must agree with its definition on the dot product (to the
+// rounding bound above) and exactly on the flag, including at the edge of
+// the bound: 1e18² = 1e36 rounds to the same float32 as smallSq, 2e18 is out.
+func TestDotBoundMatchesReference(t *testing.T) {
+	r := rand.New(rand.NewPCG(9, 10))
+	for n := 0; n <= 131; n++ {
+		for trial := 0; trial < 6; trial++ {
+			a, b := randVec(r, n), randVec(r, n)
+			wantSmall := true
+			if n > 0 && trial >= 2 {
+				big := []float32{2e18, -2e18, 1e18, float32(math.Inf(1)), float32(math.NaN()), 3e38}[trial]
+				if trial%2 == 0 {
+					a[r.IntN(n)] = big
+				} else {
+					b[r.IntN(n)] = big
+				}
+				wantSmall = big == 1e18
+			}
+			ref, refSmall := dotBoundRef(a, b)
+			if refSmall != wantSmall {
+				t.Fatalf("n=%d trial %d: reference small = %v, want %v", n, trial, refSmall, wantSmall)
+			}
+			var abs float64
+			for f := range a {
+				abs += math.Abs(float64(a[f]) * float64(b[f]))
+			}
+			tol := 2*float64(n)*0x1p-24*abs + 1e-30
+			for name, f := range map[string]func(a, b []float32) (float32, bool){"fast": dotBoundFast, "unrolled": dotBoundUnrolled} {
+				got, small := f(a, b)
+				if small != refSmall {
+					t.Fatalf("n=%d trial %d %s: small = %v, reference %v", n, trial, name, small, refSmall)
+				}
+				if !small {
+					continue // the dot of huge or non-finite rows is not compared
+				}
+				if d := math.Abs(float64(got) - float64(ref)); d > tol {
+					t.Fatalf("n=%d %s dot = %v, reference %v, |diff| %g > tol %g", n, name, got, ref, d, tol)
+				}
+			}
+		}
+	}
+}
+
+// updateFree is update without the check: the same values.
+func TestUpdateFreeMatchesUpdate(t *testing.T) {
+	r := rand.New(rand.NewPCG(11, 12))
+	for n := 1; n <= 131; n++ {
+		p0, q0 := randVec(r, n), randVec(r, n)
+		pa, qa := append([]float32(nil), p0...), append([]float32(nil), q0...)
+		pb, qb := append([]float32(nil), p0...), append([]float32(nil), q0...)
+		updateFast(pa, qa, 0.9996, 0.013, 0.9998, -0.021)
+		updateFreeFast(pb, qb, 0.9996, 0.013, 0.9998, -0.021)
+		if !sameBits(pa, pb) || !sameBits(qa, qb) {
+			t.Fatalf("n=%d: updateFreeFast differs from updateFast", n)
+		}
+	}
+}

@@ -515,11 +515,31 @@ func (m *Model) Step(u, i int32, value float64, t int64) (pred float64, err erro
 	return m.stepPointwise(u, i, value, t)
 }
 
+// stepExplicit is the explicit step of Step. The numerical guard takes one
+// of two paths:
+//
+// Bounded (no copies, no check). Let M = max_f max(|p_f|, |q_f|) and
+// B = max(γ_u, γ_i)·|e|. Each new value is a·x + b·y with a = 1 − γλ in
+// (0, 1] (fill keeps λ < 1/γ) and |b| ≤ B, so exactly |a·x + b·y| ≤ M(1 + B).
+// Float32 rounds the two products and the sum (or one fused operation), each
+// off by a factor of at most 1 + 2⁻²⁴, and a and b themselves are rounded
+// to float32; all together well under a factor 2. With M ≤ 1e18 (the kernel
+// checks M² ≤ smallSq = 1e36, an overflowing square failing the check) and
+// B ≤ maxStepScale = 1e18 the result is below 2·1e18·(1 + 1e18) ≈ 2e36,
+// far under float32's largest finite value ≈ 3.4e38: the update cannot
+// produce a non-finite value (the inputs are finite: the prediction is), so
+// there is nothing to restore and no copy is needed. The biases are
+// computed in float64 and checked before any row is written.
+//
+// Guarded, otherwise: both rows are copied to scratch, updated with the
+// checked kernel, and restored from the copies if any new value is not
+// finite.
 func (m *Model) stepExplicit(u, i int32, r float64, t int64) (float64, error) {
 	tu, ti := &m.tab[Users], &m.tab[Items]
 	p, q := tu.row(u), ti.row(i)
 	mu, mi := tu.m(u), ti.m(i)
-	raw := m.Mean() + float64(mu.bias) + float64(mi.bias) + float64(m.kern.dot(p, q))
+	d, small := m.kern.dotBound(p, q)
+	raw := m.Mean() + float64(mu.bias) + float64(mi.bias) + float64(d)
 	pred := m.clip(raw)
 	if math.IsNaN(raw) || math.IsInf(raw, 0) {
 		return raw, &NonFiniteError{User: u, Item: i}
@@ -531,14 +551,20 @@ func (m *Model) stepExplicit(u, i int32, r float64, t int64) (float64, error) {
 	bu, bi := float64(mu.bias), float64(mi.bias)
 	nbu := float32(bu + o.BiasLearnRate*fu*(e-o.BiasReg*bu))
 	nbi := float32(bi + o.BiasLearnRate*fi*(e-o.BiasReg*bi))
-	copy(m.saveP, p)
-	copy(m.saveQ, q)
-	chk := m.kern.update(p, q, float32(1-gu*o.Reg), float32(gu*e), float32(1-gi*o.Reg), float32(gi*e))
-	chk += (nbu - nbu) + (nbi - nbi)
-	if chk != 0 {
-		copy(p, m.saveP)
-		copy(q, m.saveQ)
+	a1, b1, a2, b2 := float32(1-gu*o.Reg), float32(gu*e), float32(1-gi*o.Reg), float32(gi*e)
+	if (nbu-nbu)+(nbi-nbi) != 0 {
 		return pred, &NonFiniteError{User: u, Item: i}
+	}
+	if small && max(gu, gi)*math.Abs(e) <= maxStepScale {
+		m.kern.updateFree(p, q, a1, b1, a2, b2)
+	} else {
+		copy(m.saveP, p)
+		copy(m.saveQ, q)
+		if m.kern.update(p, q, a1, b1, a2, b2) != 0 {
+			copy(p, m.saveP)
+			copy(q, m.saveQ)
+			return pred, &NonFiniteError{User: u, Item: i}
+		}
 	}
 	mu.bias, mi.bias = nbu, nbi
 	mu.count++
