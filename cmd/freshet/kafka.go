@@ -114,12 +114,12 @@ func newKafkaSource(ctx context.Context, cfg *config.Config, from stream.Positio
 	defer cancel()
 	if cfg.Kafka.CreateTopics {
 		if err := kafka.EnsureTopics(ctx, o); err != nil {
-			return nil, fmt.Errorf("kafka: create topics: %w", err)
+			return nil, fmt.Errorf("creating topics: %w", err) // err starts with "kafka: "
 		}
 	}
 	src, err := kafka.New(ctx, o, from)
 	if err != nil {
-		return nil, fmt.Errorf("kafka: %w", err)
+		return nil, err // starts with "kafka: " already
 	}
 	return src, nil
 }
