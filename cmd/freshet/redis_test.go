@@ -234,6 +234,46 @@ func TestRedisFinalFlush(t *testing.T) {
 		t.Fatalf("show output:\n%s", out)
 	}
 	t.Logf("show:\n%s", out)
+
+	// An explicit candidate list, with one item the version does not hold.
+	out = runCLI(t, env, "show", "-user", user, "-n", "0", "-candidates", "show-0001,no-such-show,show-0002")
+	if !strings.Contains(out, "top 2 of 3 candidates") || !strings.Contains(out, `not in the version: 1 candidates ("no-such-show")`) {
+		t.Fatalf("show with candidates:\n%s", out)
+	}
+	// Mistakes: a clear message and the usage exit code (2); a user the
+	// version does not hold is a runtime failure (1).
+	for _, c := range []struct {
+		args []string
+		code int
+		want string
+	}{
+		{[]string{"show"}, 2, "-user is required"},
+		{[]string{"show", "-user", user, "-n", "-1"}, 2, "-n -1"},
+		{[]string{"show", "-user", "nobody-here"}, 1, "user not found"},
+		{[]string{"erase"}, 2, "exactly one of -user and -item"},
+		{[]string{"erase", "-user", "a", "-item", "b"}, 2, "exactly one of -user and -item"},
+		{[]string{"erase", "-user", "a"}, 2, "kafka.brokers and kafka.topic must be set"},
+		{[]string{"erase", "-user", "a", "-file", filepath.Join(t.TempDir(), "missing.jsonl")}, 2, "-file"},
+	} {
+		code, stderr := runCLIFail(t, env, c.args...)
+		if code != c.code || !strings.Contains(stderr, c.want) {
+			t.Errorf("freshet %s: exit %d, stderr %q; want exit %d and %q", strings.Join(c.args, " "), code, stderr, c.code, c.want)
+		}
+	}
+}
+
+// runCLIFail runs the test binary as freshet with args, expecting a failure,
+// and returns the exit code and stderr.
+func runCLIFail(t *testing.T, env map[string]string, args ...string) (int, string) {
+	t.Helper()
+	cmd := exec.Command(os.Args[0], args...)
+	cmd.Env = baseEnv(env)
+	var errb bytes.Buffer
+	cmd.Stderr = &errb
+	if err := cmd.Run(); err == nil {
+		t.Fatalf("freshet %s succeeded, want a failure", strings.Join(args, " "))
+	}
+	return cmd.ProcessState.ExitCode(), errb.String()
 }
 
 // runCLI runs the test binary as freshet with args and returns its stdout.
