@@ -114,7 +114,7 @@ func withEnv(env map[string]string, kv ...string) map[string]string {
 	return out
 }
 
-func envConfig(t *testing.T, env map[string]string) *config.Config {
+func envConfig(t testing.TB, env map[string]string) *config.Config {
 	t.Helper()
 	cfg, err := config.LoadEnv("", func(k string) (string, bool) { v, ok := env[k]; return v, ok })
 	if err != nil {
@@ -802,6 +802,9 @@ func TestKafkaSASL(t *testing.T) {
 			}
 			if strings.Contains(text, pass) {
 				t.Fatalf("the password appears in the log")
+			}
+			if strings.Contains(text, "kafka: kafka:") {
+				t.Errorf("the error repeats its prefix:\n%s", text)
 			}
 			// Not a retry storm: a failed authentication is final, so the
 			// daemon ends within seconds having logged only a few lines.
