@@ -150,3 +150,37 @@ func TestUpdateFreeMatchesUpdate(t *testing.T) {
 		}
 	}
 }
+
+// Touch only starts loads: it must change no row, accept rows out of range,
+// and (on amd64, where it prefetches) reach the last row of a chunk and the
+// last metadata entry without faulting.
+func TestTouchChangesNothing(t *testing.T) {
+	for _, k := range []int{1, 5, 16, 64} {
+		m, err := New(Options{Rank: k, Seed: 3})
+		if err != nil {
+			t.Fatal(err)
+		}
+		for s := range m.tab {
+			for range chunkRows {
+				r := m.tab[s].alloc()
+				m.initRow(Side(s), m.tab[s].row(r), []byte{byte(r), byte(r >> 8)})
+			}
+		}
+		before := [2][]float32{}
+		for s := range m.tab {
+			before[s] = append([]float32(nil), m.tab[s].vec[0]...)
+		}
+		for _, r := range []int32{-1, 0, 1, chunkRows - 1, chunkRows, 1 << 30} {
+			m.Touch(r, chunkRows-1-r)
+			m.Touch(r, r)
+		}
+		for s := range m.tab {
+			if !sameBits(before[s], m.tab[s].vec[0]) {
+				t.Fatalf("k=%d: Touch changed %s rows", k, Side(s))
+			}
+		}
+		if m.sink-m.sink != 0 {
+			t.Fatalf("k=%d: Touch's sum is not finite: %v", k, m.sink)
+		}
+	}
+}

@@ -441,9 +441,11 @@ func (m *Model) rate(n uint32) float64 {
 	return max(1/(1+m.opts.Decay*float64(n)), m.opts.DecayFloor)
 }
 
-// Touch reads every cache line of user row u and item row i and their
-// metadata, so that a trainer can start the memory loads of the next group
-// of events before stepping the current one. Rows out of range are ignored.
+// Touch starts the memory loads of every cache line of user row u and item
+// row i and their metadata, so that a trainer can overlap them with
+// stepping the events before. On amd64 it issues prefetches, which unlike
+// loads do not hold up the instructions after them; elsewhere it reads one
+// value per line. Rows out of range are ignored.
 func (m *Model) Touch(u, i int32) {
 	var s float32
 	for side, r := range [2]int32{u, i} {
@@ -451,11 +453,7 @@ func (m *Model) Touch(u, i int32) {
 		if r < 0 || r >= t.next {
 			continue
 		}
-		v := t.row(r)
-		for f := 0; f < len(v); f += 16 { // 16 float32 = one 64-byte line
-			s += v[f]
-		}
-		s += t.m(r).bias
+		s += t.touchRow(r)
 	}
 	m.sink += s
 }
