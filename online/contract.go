@@ -184,6 +184,11 @@ type Meta struct {
 	Model  ModelMeta `json:"model"`
 	// Monitor is the prequential and drift-detector state (Monitor.MarshalState).
 	Monitor json.RawMessage `json:"monitor,omitempty"`
+	// Purge is set from an erasure until the snapshot that completes it is
+	// committed: a daemon that resumes from a cut with Purge set takes that
+	// snapshot (and deletes older checkpoint files) again, so a crash in
+	// between cannot leave erased rows behind in retained files.
+	Purge bool `json:"purge,omitempty"`
 }
 
 // Clone returns a deep copy of m.

@@ -205,10 +205,13 @@ type Trainer struct {
 	// it is committed older checkpoint files are deleted (Purger).
 	purge     bool
 	snapPurge bool
-	lastSnap  time.Time
-	full      cursor
-	lastOffer time.Time
-	stallMax  time.Duration
+	// purgeInFlight is set when a purging snapshot's commit is queued and
+	// cleared by the writer once the older files are deleted.
+	purgeInFlight atomic.Bool
+	lastSnap      time.Time
+	full          cursor
+	lastOffer     time.Time
+	stallMax      time.Duration
 
 	// recall sampling
 	scores     []float32
@@ -342,6 +345,7 @@ func NewTrainer(o TrainerOptions) (*Trainer, error) {
 		t.flushedPos = t.pos.Clone()
 		t.flushedAny = true
 		t.lastFlushSeq = r.Seq
+		t.purge = r.Purge // an erasure's purge did not complete before the stop
 	}
 	t.startApplied = t.counts.Applied
 	t.m.Track(ConsumerLog, true)
@@ -708,6 +712,11 @@ func (t *Trainer) snapshotStep(now time.Time) {
 		t.seq++ // a cut of its own even when nothing changed
 		rs := t.rowSet()
 		t.m.TakeDirty(ConsumerLog, rs)
+		if t.snapPurge {
+			// Until the writer has deleted the older files, cuts (this one
+			// included) say a purge is pending.
+			t.purgeInFlight.Store(true)
+		}
 		meta := t.meta()
 		t.flushedPos, t.flushedAny, t.lastFlushSeq, t.lastFlush = t.pos.Clone(), true, t.seq, t.o.now()
 		t.snapStats.Seq = meta.Seq
@@ -803,6 +812,7 @@ func (t *Trainer) meta() *Meta {
 		Counts:   t.counts,
 		Model:    t.m.Meta(),
 		Monitor:  mon,
+		Purge:    t.purge || (t.snap.on && t.snapPurge) || t.purgeInFlight.Load(),
 	}
 }
 
@@ -826,7 +836,9 @@ func (t *Trainer) writer() {
 		case jobCommit:
 			err = cp.Commit(j.meta)
 			if p, ok := cp.(Purger); ok && err == nil && j.purge {
-				err = p.Purge()
+				if err = p.Purge(); err == nil {
+					t.purgeInFlight.Store(false)
+				}
 			}
 			if err == nil {
 				st := j.stats

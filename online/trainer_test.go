@@ -339,3 +339,72 @@ func BenchmarkSnapshotStall(b *testing.B) {
 	b.ReportMetric(float64(last.Rows), "rows")
 	b.ReportMetric(float64(peak)/(1<<20), "extra-heap-MB")
 }
+
+// recorder is an in-memory Checkpointer that records the protocol calls.
+type recorder struct {
+	mu    sync.Mutex
+	calls []string
+	metas []*online.Meta
+}
+
+func (r *recorder) add(call string, m *online.Meta) {
+	r.mu.Lock()
+	r.calls = append(r.calls, call)
+	if m != nil {
+		r.metas = append(r.metas, m.Clone())
+	}
+	r.mu.Unlock()
+}
+func (r *recorder) Append(_ *online.RowSet, m *online.Meta) error { r.add("append", m); return nil }
+func (r *recorder) BeginSnapshot(m *online.Meta) error            { r.add("begin", m); return nil }
+func (r *recorder) WriteRows(*online.RowSet) error                { r.add("rows", nil); return nil }
+func (r *recorder) Commit(m *online.Meta) error                   { r.add("commit", m); return nil }
+func (r *recorder) Purge() error                                  { r.add("purge", nil); return nil }
+
+// TestTrainerResumesPendingPurge: a daemon that stopped (or crashed) after an
+// erasure but before the snapshot that purges older checkpoint files resumes
+// from a cut marked Purge, and must take that snapshot and purge at once.
+func TestTrainerResumesPendingPurge(t *testing.T) {
+	sc, err := stream.NewScenario(stream.ScenarioOptions{Seed: 5, Events: 20000, Listeners: 300, Shows: 50}, stream.Position{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	m, mon := newPair(t, 4)
+	rec := &recorder{}
+	tr, err := online.NewTrainer(online.TrainerOptions{
+		Model: m, Monitor: mon, Source: sc, Checkpoint: rec, Progress: -1,
+		SnapshotInterval: time.Hour, // no snapshot would be due by time
+		Resume:           &online.Meta{Rank: 4, Mode: "explicit", Seq: 7, Purge: true},
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := tr.Run(context.Background()); err != nil {
+		t.Fatal(err)
+	}
+	rec.mu.Lock()
+	defer rec.mu.Unlock()
+	var begin, commit, purge int
+	for i, c := range rec.calls {
+		switch c {
+		case "begin":
+			begin++
+			if i == 0 || rec.calls[i-1] != "append" {
+				t.Errorf("the purging snapshot did not start right after a cut: calls %v", rec.calls[:i+1])
+			}
+		case "commit":
+			commit++
+		case "purge":
+			purge++
+			if rec.calls[i-1] != "commit" {
+				t.Errorf("purge not right after a commit: %v", rec.calls[max(0, i-3):i+1])
+			}
+		}
+	}
+	if begin != 1 || commit != 1 || purge != 1 {
+		t.Fatalf("begin %d, commit %d, purge %d; want one each (calls %v)", begin, commit, purge, rec.calls)
+	}
+	if !rec.metas[0].Purge {
+		t.Errorf("the first cut after resuming does not carry the pending purge")
+	}
+}
