@@ -9,6 +9,22 @@ import "unsafe"
 //go:noescape
 func prefetchRange(p unsafe.Pointer, n uintptr)
 
+// prefetchPair is prefetchRange(a, n), prefetchRange(b, n),
+// prefetchRange(ma, mn), prefetchRange(mb, mn) in one call; mn ≤ 64, so
+// prefetching the first and the last byte of each metadata covers it.
+//
+//go:noescape
+func prefetchPair(a, b unsafe.Pointer, n uintptr, ma, mb unsafe.Pointer, mn uintptr)
+
+// touchPair starts the loads of user row u and item row i (both in range)
+// and their metadata with one call, and returns 0 like touchRow.
+func touchPair(tu, ti *table, u, i int32) float32 {
+	prefetchPair(unsafe.Pointer(&tu.vec[u>>chunkShift][int(u&chunkMask)*tu.k]),
+		unsafe.Pointer(&ti.vec[i>>chunkShift][int(i&chunkMask)*ti.k]), uintptr(tu.k)*4,
+		unsafe.Pointer(tu.m(u)), unsafe.Pointer(ti.m(i)), unsafe.Sizeof(rowMeta{}))
+	return 0
+}
+
 // touchRow starts the loads of row r of t (r in [0, t.next)) and of its
 // metadata with prefetches, and returns 0 (the portable variant returns a
 // sum of the values it loaded).

@@ -12,3 +12,8 @@ func (t *table) touchRow(r int32) float32 {
 	}
 	return s + t.m(r).bias
 }
+
+// touchPair is touchRow of user row u and item row i (both in range).
+func touchPair(tu, ti *table, u, i int32) float32 {
+	return tu.touchRow(u) + ti.touchRow(i)
+}

@@ -145,7 +145,7 @@ func dotBoundFast(a, b []float32) (float32, bool) {
 		f += 8
 	}
 	small := mx0.Max(mx1).LessEqual(archsimd.BroadcastFloat32x8(smallSq)).ToBits() == 0xff
-	s := reduceClear(acc0.Add(acc1))
+	s := reduceRegClear(acc0.Add(acc1))
 	for ; f < len(a); f++ {
 		x, y := a[f], b[f]
 		s += x * y
@@ -180,4 +180,18 @@ func updateFreeFast(p, q []float32, a1, b1, a2, b2 float32) {
 		x, y := p[f], q[f]
 		p[f], q[f] = a1*x+b1*y, a2*y+b2*x
 	}
+}
+
+// reduceRegClear is reduceClear with the lane sums done in registers: fold
+// the high half onto the low, then two pairwise adds (VHADDPS) leave the
+// sum in lane 0. It is stored (a store stays ordered before the clear; an
+// extract to a register was scheduled after it, behind a legacy-SSE spill)
+// and read back as one float after the clear.
+func reduceRegClear(v archsimd.Float32x8) float32 {
+	var a [4]float32
+	w := v.GetLo().Add(v.GetHi())
+	w = w.AddPairs(w)
+	w.AddPairs(w).Store(&a)
+	archsimd.ClearAVXUpperBits()
+	return a[0]
 }

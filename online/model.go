@@ -198,10 +198,11 @@ type Model struct {
 	// Compensated (Neumaier) running sum of ratings: μ = (sum+comp)/n.
 	meanSum, meanComp, meanN float64
 
-	tracked [numConsumers]bool
-	dirty   [numConsumers][2][]int32
-	dels    [numConsumers][]delRec
-	delIDs  [numConsumers][]byte
+	tracked   [numConsumers]bool
+	trackBits uint8 // bit c set when tracked[c]: mark's quick test
+	dirty     [numConsumers][2][]int32
+	dels      [numConsumers][]delRec
+	delIDs    [numConsumers][]byte
 
 	tomb    map[[sha256.Size]byte]struct{}
 	hashBuf []byte
@@ -447,6 +448,11 @@ func (m *Model) rate(n uint32) float64 {
 // loads do not hold up the instructions after them; elsewhere it reads one
 // value per line. Rows out of range are ignored.
 func (m *Model) Touch(u, i int32) {
+	tu, ti := &m.tab[Users], &m.tab[Items]
+	if uint32(u) < uint32(tu.next) && uint32(i) < uint32(ti.next) {
+		m.sink += touchPair(tu, ti, u, i)
+		return
+	}
 	var s float32
 	for side, r := range [2]int32{u, i} {
 		t := &m.tab[side]
@@ -495,14 +501,15 @@ func (m *Model) rowError(u, i int32) error {
 // that is not finite (or not positive, implicit), returns an error and
 // changes nothing. Step does not allocate on success.
 func (m *Model) Step(u, i int32, value float64, t int64) (pred float64, err error) {
-	if !m.tab[Users].isLive(u) || !m.tab[Items].isLive(i) {
+	mu, mi := m.tab[Users].liveMeta(u), m.tab[Items].liveMeta(i)
+	if mu == nil || mi == nil {
 		return 0, m.rowError(u, i)
 	}
 	if math.IsNaN(value) || math.IsInf(value, 0) {
 		return 0, fmt.Errorf("online: step: value %v is not finite", value)
 	}
 	if m.opts.Mode == Explicit {
-		return m.stepExplicit(u, i, value, t)
+		return m.stepExplicit(u, i, mu, mi, value, t)
 	}
 	if !(value > 0) {
 		return 0, fmt.Errorf("online: step: implicit value (weight) %v must be positive", value)
@@ -532,10 +539,8 @@ func (m *Model) Step(u, i int32, value float64, t int64) (pred float64, err erro
 // Guarded, otherwise: both rows are copied to scratch, updated with the
 // checked kernel, and restored from the copies if any new value is not
 // finite.
-func (m *Model) stepExplicit(u, i int32, r float64, t int64) (float64, error) {
-	tu, ti := &m.tab[Users], &m.tab[Items]
-	p, q := tu.row(u), ti.row(i)
-	mu, mi := tu.m(u), ti.m(i)
+func (m *Model) stepExplicit(u, i int32, mu, mi *rowMeta, r float64, t int64) (float64, error) {
+	p, q := m.tab[Users].row(u), m.tab[Items].row(i)
 	d, small := m.kern.dotBound(p, q)
 	raw := m.Mean() + float64(mu.bias) + float64(mi.bias) + float64(d)
 	pred := m.clip(raw)
@@ -569,8 +574,10 @@ func (m *Model) stepExplicit(u, i int32, r float64, t int64) (float64, error) {
 	mi.count++
 	mu.last, mi.last = t, t
 	m.addMean(r)
-	m.mark(Users, u)
-	m.mark(Items, i)
+	if m.trackBits != 0 {
+		m.mark(Users, u)
+		m.mark(Items, i)
+	}
 	return pred, nil
 }
 
@@ -789,6 +796,7 @@ func (m *Model) Track(c Consumer, on bool) {
 		return
 	}
 	m.tracked[c] = on
+	m.trackBits ^= 1 << c
 	if !on {
 		m.clearDirty(c)
 	}
@@ -812,6 +820,9 @@ func (m *Model) clearDirty(c Consumer) {
 // first change since the consumer's last TakeDirty.
 func (m *Model) mark(s Side, r int32) {
 	md := m.tab[s].m(r)
+	if m.trackBits&^md.flags == 0 {
+		return // every tracked consumer has the row already (or none is tracked)
+	}
 	for c := range Consumer(numConsumers) {
 		bit := uint8(1) << c
 		if m.tracked[c] && md.flags&bit == 0 {

@@ -56,6 +56,17 @@ func (t *table) isLive(r int32) bool {
 	return r >= 0 && r < t.next && t.meta[r>>chunkShift][r&chunkMask].flags&flagLive != 0
 }
 
+// liveMeta returns the metadata of r when r is a live row, and nil otherwise.
+func (t *table) liveMeta(r int32) *rowMeta {
+	if uint32(r) >= uint32(t.next) { // r < 0 wraps above next ≤ 2³¹−1
+		return nil
+	}
+	if md := &t.meta[r>>chunkShift][r&chunkMask]; md.flags&flagLive != 0 {
+		return md
+	}
+	return nil
+}
+
 // grow makes rows [0, n) addressable, adding chunks as needed. It does not
 // change next.
 func (t *table) grow(n int32) {
