@@ -806,3 +806,50 @@ func FuzzModelOps(f *testing.F) {
 		}
 	})
 }
+
+// An explicit step with the fast kernels (bounded path, no copies) and with
+// the reference loops (guarded path, copies and a checked update) must give
+// the same predictions and rows. The kernels agree per step to a few units
+// of float32 rounding (kernel_test.go); over 3000 steps at learning rate
+// 0.01 such differences stay near 1e-6, so 1e-4 leaves a wide margin.
+func TestStepFastMatchesReference(t *testing.T) {
+	for _, k := range []int{3, 16, 24, 64} {
+		ms := [2]*Model{}
+		for v := range ms {
+			ms[v] = newModel(t, Options{Rank: k, Seed: 5, Decay: 0.01})
+			for j := range 40 {
+				intern(t, ms[v], Users, fmt.Sprintf("listener-%d", j))
+				intern(t, ms[v], Items, fmt.Sprintf("show-%d", j))
+			}
+		}
+		ms[0].kern = refKernels
+		r := rand.New(rand.NewPCG(21, 22))
+		for n := range 3000 {
+			u, i, val := int32(r.IntN(40)), int32(r.IntN(40)), float64(1+r.IntN(5))
+			p0, err0 := ms[0].Step(u, i, val, int64(n))
+			p1, err1 := ms[1].Step(u, i, val, int64(n))
+			if err0 != nil || err1 != nil {
+				t.Fatalf("k=%d step %d: errors %v, %v", k, n, err0, err1)
+			}
+			if math.Abs(p0-p1) > 1e-4 {
+				t.Fatalf("k=%d step %d: prediction %v (reference) vs %v (fast)", k, n, p0, p1)
+			}
+		}
+		if _, small := fastKernels.dotBound(ms[1].tab[Users].row(0), ms[1].tab[Items].row(0)); !small {
+			t.Fatalf("k=%d: rows of this size must take the bounded path", k)
+		}
+		for s := range ms[0].tab {
+			for r := int32(0); r < 40; r++ {
+				a, b := ms[0].tab[s].row(r), ms[1].tab[s].row(r)
+				for f := range a {
+					if math.Abs(float64(a[f]-b[f])) > 1e-4 {
+						t.Fatalf("k=%d %s row %d [%d]: %v (reference) vs %v (fast)", k, Side(s), r, f, a[f], b[f])
+					}
+				}
+				if d := ms[0].tab[s].m(r).bias - ms[1].tab[s].m(r).bias; math.Abs(float64(d)) > 1e-4 {
+					t.Fatalf("k=%d %s row %d bias differs by %v", k, Side(s), r, d)
+				}
+			}
+		}
+	}
+}
