@@ -1,5 +1,7 @@
 package online
 
+import "math"
+
 // The inner loops of a step. Each has a reference variant (a plain loop, the
 // definition) and a fast variant selected at build time: kernel_simd.go (AVX2
 // with FMA, GOEXPERIMENT=simd on amd64) or kernel_generic.go (the unrolled
@@ -139,11 +141,22 @@ var (
 	fastKernels = kernels{dot: dotFast, update: updateFast, dotBound: dotBoundFast, updateFree: updateFreeFast}
 )
 
-// dotBoundUnrolled is dotBoundRef with four accumulators, the squares'
-// maximum kept alongside.
+// smallAbsBits is the float32 bit pattern of 1e17. dotBoundUnrolled reports
+// small when every |x| ≤ 1e17, which implies x² ≤ 1e34 < smallSq: a
+// stricter test than dotBoundRef's, so still sound for Model.stepExplicit.
+const smallAbsBits = 0x5bb1a2bc
+
+// dotBoundUnrolled is dotUnrolled that also reports whether every |a[f]| and
+// |b[f]| is at most 1e17. The magnitudes are compared as bit patterns (for
+// non-negative floats the order of the patterns is the order of the values,
+// and NaN patterns lie above +Inf), with an integer max that compiles to a
+// conditional move: the builtin float max, which handles NaN and signed
+// zeros, and compare-and-branch both made this loop slower than dotRef.
 func dotBoundUnrolled(a, b []float32) (float32, bool) {
 	b = b[:len(a)]
-	var s0, s1, s2, s3, mx float32
+	var s0, s1, s2, s3 float32
+	var mb uint32
+	const abs = 1<<31 - 1
 	f := 0
 	for ; f+4 <= len(a); f += 4 {
 		aa := a[f : f+4 : f+4]
@@ -152,12 +165,15 @@ func dotBoundUnrolled(a, b []float32) (float32, bool) {
 		s1 += aa[1] * bb[1]
 		s2 += aa[2] * bb[2]
 		s3 += aa[3] * bb[3]
-		mx = max(mx, aa[0]*aa[0], aa[1]*aa[1], aa[2]*aa[2], aa[3]*aa[3],
-			bb[0]*bb[0], bb[1]*bb[1], bb[2]*bb[2], bb[3]*bb[3])
+		m0 := max(math.Float32bits(aa[0])&abs, math.Float32bits(bb[0])&abs)
+		m1 := max(math.Float32bits(aa[1])&abs, math.Float32bits(bb[1])&abs)
+		m2 := max(math.Float32bits(aa[2])&abs, math.Float32bits(bb[2])&abs)
+		m3 := max(math.Float32bits(aa[3])&abs, math.Float32bits(bb[3])&abs)
+		mb = max(mb, max(m0, m1), max(m2, m3))
 	}
 	for ; f < len(a); f++ {
 		s0 += a[f] * b[f]
-		mx = max(mx, a[f]*a[f], b[f]*b[f])
+		mb = max(mb, math.Float32bits(a[f])&abs, math.Float32bits(b[f])&abs)
 	}
-	return (s0 + s1) + (s2 + s3), mx <= smallSq
+	return (s0 + s1) + (s2 + s3), mb <= smallAbsBits
 }
