@@ -45,8 +45,10 @@ func benchGroup(r *rand.PCG, g *[16]benchEvent, nu, ni int) {
 // BenchmarkStep measures one explicit SGD step at rank k with tables in
 // cache (1k × 1k) and out of cache (2M users × 200k items, random rows), for
 // the reference loops, the fast kernels, and the fast kernels with the rows
-// of the next group of 16 events touched before the current group is
-// stepped (as the trainer does with a batch).
+// of the next group of 16 events touched (prefetched, on amd64) before the
+// current group is stepped, so that their loads overlap the steps. The
+// reference variant is the plain scalar loops on the guarded path (copies,
+// checked update) the Model had before the fast kernels.
 func BenchmarkStep(b *testing.B) {
 	for _, k := range []int{16, 32, 64, 128} {
 		b.Run(fmt.Sprintf("k=%d", k), func(b *testing.B) {
