@@ -47,8 +47,8 @@ func benchGroup(r *rand.PCG, g *[16]benchEvent, nu, ni int) {
 // the reference loops, the fast kernels, and the fast kernels with the rows
 // of the next group of 16 events touched (prefetched, on amd64) before the
 // current group is stepped, so that their loads overlap the steps. The
-// reference variant is the plain scalar loops on the guarded path (copies,
-// checked update) the Model had before the fast kernels.
+// reference variant is the plain scalar loops, always on the guarded path
+// (row copies and a checked update).
 func BenchmarkStep(b *testing.B) {
 	for _, k := range []int{16, 32, 64, 128} {
 		b.Run(fmt.Sprintf("k=%d", k), func(b *testing.B) {
