@@ -238,8 +238,14 @@ type Trainer struct {
 	alarms         uint64
 	startApplied   uint64
 
-	// group holds the resolved rows of the events being stepped.
-	group [touchGroup]groupEv
+	// group holds the resolved rows of the group being stepped and of the
+	// next one, whose rows are being prefetched meanwhile.
+	group [2]eventGroup
+}
+
+type eventGroup struct {
+	evs [touchGroup]groupEv
+	n   int
 }
 
 type groupEv struct {
@@ -471,37 +477,70 @@ func (t *Trainer) Status() TrainerStatus {
 	return TrainerStatus{}
 }
 
-// apply scores and learns every event of b, in order. Events are resolved and
-// their rows touched a group at a time, so the cache misses of a group
-// overlap; erasures close a group, so row reuse stays in event order.
+// apply scores and learns every event of b, in order. Events are resolved
+// (their IDs looked up or interned) and their rows prefetched a group of 16
+// at a time, one group ahead of the one being stepped, so the rows' cache
+// misses overlap with useful work. An erasure closes a group and is applied
+// only after every event before it has been stepped, so row reuse stays in
+// event order; new IDs are interned in event order too.
 func (t *Trainer) apply(b *stream.Batch) {
 	evs := b.Events
-	for len(evs) > 0 {
-		n := 0
-		for n < len(evs) && n < touchGroup {
-			ev := &evs[n]
-			if ev.Kind != stream.Interaction {
-				break
-			}
-			g := &t.group[n]
-			g.ev = ev
-			g.ok = t.resolve(g)
-			if g.ok {
-				t.m.Touch(g.u, g.i)
-			}
-			n++
+	cur, cn, stop := t.resolveGroup(0, evs)
+	evs = evs[cn:]
+	for {
+		var next, nn int
+		if !stop && len(evs) > 0 {
+			next, nn, stop = t.resolveGroup(1-cur, evs)
+			evs = evs[nn:]
 		}
-		for j := 0; j < n; j++ {
-			if g := &t.group[j]; g.ok {
-				t.step(g)
+		t.stepGroup(cur)
+		if nn == 0 {
+			if stop && len(evs) > 0 {
+				t.erase(&evs[0]) // the erasure that closed the group
+				evs = evs[1:]
 			}
+			if len(evs) == 0 {
+				return
+			}
+			cur, cn, stop = t.resolveGroup(0, evs)
+			evs = evs[cn:]
+			continue
 		}
-		if n < len(evs) && n < touchGroup {
-			t.erase(&evs[n])
-			n++
-		}
-		evs = evs[n:]
+		cur = next
 	}
+}
+
+// resolveGroup resolves up to touchGroup leading interactions of evs into
+// group buffer g and prefetches their rows. It reports how many events it
+// took and whether it stopped at an erasure.
+func (t *Trainer) resolveGroup(g int, evs []stream.Event) (int, int, bool) {
+	grp := &t.group[g]
+	grp.n = 0
+	for grp.n < len(evs) && grp.n < touchGroup {
+		ev := &evs[grp.n]
+		if ev.Kind != stream.Interaction {
+			return g, grp.n, true
+		}
+		e := &grp.evs[grp.n]
+		e.ev = ev
+		e.ok = t.resolve(e)
+		if e.ok {
+			t.m.Touch(e.u, e.i)
+		}
+		grp.n++
+	}
+	return g, grp.n, false
+}
+
+// stepGroup steps the resolved events of group buffer g.
+func (t *Trainer) stepGroup(g int) {
+	grp := &t.group[g]
+	for j := 0; j < grp.n; j++ {
+		if e := &grp.evs[j]; e.ok {
+			t.step(e)
+		}
+	}
+	grp.n = 0
 }
 
 func (t *Trainer) resolve(g *groupEv) bool {

@@ -408,3 +408,103 @@ func TestTrainerResumesPendingPurge(t *testing.T) {
 		t.Errorf("the first cut after resuming does not carry the pending purge")
 	}
 }
+
+// eraseEvery wraps a source and turns every 97th event into an erasure of
+// that event's user, so erasures land at every position within the groups
+// of 16 and the batches.
+type eraseEvery struct {
+	stream.Source
+	n int
+}
+
+func (e *eraseEvery) Next(ctx context.Context) (*stream.Batch, error) {
+	b, err := e.Source.Next(ctx)
+	if err != nil {
+		return b, err
+	}
+	for i := range b.Events {
+		if e.n++; e.n%97 == 0 {
+			b.Events[i].Kind = stream.EraseUser
+		}
+	}
+	return b, nil
+}
+
+// TestTrainerMatchesSequentialLoop checks the trainer's grouping (IDs
+// resolved and rows prefetched a group ahead of the steps) against the plain
+// definition: for each event in order, intern both IDs, step, or erase. The
+// two models must be equal bit for bit.
+func TestTrainerMatchesSequentialLoop(t *testing.T) {
+	opts := stream.ScenarioOptions{Seed: 9, Events: 30000, Listeners: 400, Shows: 80}
+	sc, err := stream.NewScenario(opts, stream.Position{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	m1, mon1 := newPair(t, 8)
+	tr, err := online.NewTrainer(online.TrainerOptions{
+		Model: m1, Monitor: mon1, Source: &eraseEvery{Source: sc}, Checkpoint: &recorder{}, Progress: -1,
+	})
+	if err != nil {
+		t.Fatal(err)
+	}
+	if err := tr.Run(context.Background()); err != nil {
+		t.Fatal(err)
+	}
+
+	sc2, err := stream.NewScenario(opts, stream.Position{})
+	if err != nil {
+		t.Fatal(err)
+	}
+	src := &eraseEvery{Source: sc2}
+	m2, _ := newPair(t, 8)
+	var erased int
+	for {
+		b, err := src.Next(context.Background())
+		if err == io.EOF {
+			break
+		}
+		if err != nil {
+			t.Fatal(err)
+		}
+		for _, ev := range b.Events {
+			if ev.Kind == stream.EraseUser {
+				m2.Erase(online.Users, ev.User)
+				erased++
+				continue
+			}
+			u, _, err := m2.Intern(online.Users, ev.User, ev.Time)
+			if err != nil {
+				continue
+			}
+			i, _, err := m2.Intern(online.Items, ev.Item, ev.Time)
+			if err != nil {
+				continue
+			}
+			if _, err := m2.Step(u, i, ev.Value, ev.Time); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if erased == 0 || tr.Counts().Erased != uint64(erased) {
+		t.Fatalf("erasures: trainer %d, loop %d", tr.Counts().Erased, erased)
+	}
+	for _, side := range []online.Side{online.Users, online.Items} {
+		var a, b online.RowSet
+		m1.CopyRows(side, 0, m1.Rows(side), &a)
+		m2.CopyRows(side, 0, m2.Rows(side), &b)
+		if a.Len() != b.Len() {
+			t.Fatalf("%v: trainer has %d rows, loop %d", side, a.Len(), b.Len())
+		}
+		for r := range a.Recs {
+			x, y := a.Recs[r], b.Recs[r]
+			if x.Row != y.Row || !bytes.Equal(x.ID, y.ID) || math.Float32bits(x.Bias) != math.Float32bits(y.Bias) || x.Count != y.Count {
+				t.Fatalf("%v row %d: trainer %+v, loop %+v", side, x.Row, x, y)
+			}
+			for j := range x.Vec {
+				if math.Float32bits(x.Vec[j]) != math.Float32bits(y.Vec[j]) {
+					t.Fatalf("%v row %d factor %d: trainer %v, loop %v", side, x.Row, j, x.Vec[j], y.Vec[j])
+				}
+			}
+		}
+	}
+}
