@@ -15,6 +15,11 @@ var fastKernelName = func() string {
 	return "unrolled"
 }()
 
+// fastBounded reports whether this build's dotBoundFast reports small rows
+// (so explicit steps on them skip the guard copies): here it does, with AVX2
+// or with the unrolled fallback.
+const fastBounded = true
+
 // hasAVX2 reports whether the CPU has AVX2 and FMA; without them the
 // unrolled portable loops run.
 var hasAVX2 = archsimd.X86.AVX2() && archsimd.X86.FMA()
