@@ -3,6 +3,7 @@ package online
 import (
 	"bytes"
 	"hash/maphash"
+	"unsafe"
 )
 
 // index maps string IDs to rows and rows back to IDs without a Go map and
@@ -182,4 +183,54 @@ func (x *index) heapBytes() int {
 		n += cap(c)
 	}
 	return n
+}
+
+// Staged prefetching for a group of lookups. A lookup of a known ID makes
+// three dependent loads, each a likely cache miss in a large index: its home
+// slot, the row's ref, the ID's bytes in the arena. The trainer resolves 32
+// IDs per group of events; calling prefetchSlot for all of them, then
+// prefetchRef for all, then prefetchBytes for all, then find, overlaps the
+// misses of the whole group at each stage instead of taking them one
+// lookup at a time. Each stage only issues prefetches (or, without them,
+// loads); none changes the index, and a wrong guess costs one wasted line.
+
+// prefetchSlot starts loading the home slot of an ID with fingerprint f.
+func (x *index) prefetchSlot(f uint32) {
+	j := uint64(f) & uint64(len(x.slots)-1)
+	prefetchLine(unsafe.Pointer(&x.slots[j]))
+}
+
+// prefetchRef starts loading the ref of the row in the first slot of f's
+// probe run whose fingerprint matches (usually the home slot).
+func (x *index) prefetchRef(f uint32) {
+	if r, ok := x.guess(f); ok && int(r) < len(x.refs) {
+		prefetchLine(unsafe.Pointer(&x.refs[r]))
+	}
+}
+
+// prefetchBytes starts loading the ID bytes of that row.
+func (x *index) prefetchBytes(f uint32) {
+	if r, ok := x.guess(f); ok {
+		if id := x.id(r); len(id) > 0 {
+			prefetchLine(unsafe.Pointer(&id[0]))
+		}
+	}
+}
+
+// guess returns the row of the first entry of f's probe run with
+// fingerprint f, looking at no more than four slots.
+func (x *index) guess(f uint32) (int32, bool) {
+	mask := uint64(len(x.slots) - 1)
+	j := uint64(f) & mask
+	for range 4 {
+		s := x.slots[j]
+		if s == 0 {
+			return -1, false
+		}
+		if uint32(s>>32) == f {
+			return int32(uint32(s) - 1), true
+		}
+		j = (j + 1) & mask
+	}
+	return -1, false
 }

@@ -33,3 +33,6 @@ func (t *table) touchRow(r int32) float32 {
 	prefetchRange(unsafe.Pointer(t.m(r)), unsafe.Sizeof(rowMeta{}))
 	return 0
 }
+
+// prefetchLine starts loading the cache line holding p.
+func prefetchLine(p unsafe.Pointer) { prefetchRange(p, 1) }

@@ -2,6 +2,8 @@
 
 package online
 
+import "unsafe"
+
 // touchRow reads (r in [0, t.next)) one value from every cache line of row r of t and its
 // metadata, returning their sum so the loads are not optimized away.
 func (t *table) touchRow(r int32) float32 {
@@ -17,3 +19,9 @@ func (t *table) touchRow(r int32) float32 {
 func touchPair(tu, ti *table, u, i int32) float32 {
 	return tu.touchRow(u) + ti.touchRow(i)
 }
+
+// prefetchSink keeps prefetchLine's loads from being optimised away.
+var prefetchSink byte
+
+// prefetchLine loads the byte at p (a portable stand-in for a prefetch).
+func prefetchLine(p unsafe.Pointer) { prefetchSink += *(*byte)(p) }

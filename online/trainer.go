@@ -244,8 +244,9 @@ type Trainer struct {
 }
 
 type eventGroup struct {
-	evs [touchGroup]groupEv
-	n   int
+	evs    [touchGroup]groupEv
+	n      int
+	fu, fi [touchGroup]uint32 // ID fingerprints, for prefetchIDs
 }
 
 type groupEv struct {
@@ -515,6 +516,7 @@ func (t *Trainer) apply(b *stream.Batch) {
 // took and whether it stopped at an erasure.
 func (t *Trainer) resolveGroup(g int, evs []stream.Event) (int, int, bool) {
 	grp := &t.group[g]
+	t.prefetchIDs(grp, evs)
 	grp.n = 0
 	for grp.n < len(evs) && grp.n < touchGroup {
 		ev := &evs[grp.n]
@@ -530,6 +532,27 @@ func (t *Trainer) resolveGroup(g int, evs []stream.Event) (int, int, bool) {
 		grp.n++
 	}
 	return g, grp.n, false
+}
+
+// prefetchIDs starts the index loads of the next group's IDs in three stages
+// (slots, row refs, ID bytes; see index.prefetchSlot), so that the lookups in
+// resolveGroup find their lines in cache.
+func (t *Trainer) prefetchIDs(grp *eventGroup, evs []stream.Event) {
+	n := min(len(evs), touchGroup)
+	ui, ii := &t.m.idx[Users], &t.m.idx[Items]
+	for j := range n {
+		grp.fu[j], grp.fi[j] = ui.fp(evs[j].User), ii.fp(evs[j].Item)
+		ui.prefetchSlot(grp.fu[j])
+		ii.prefetchSlot(grp.fi[j])
+	}
+	for j := range n {
+		ui.prefetchRef(grp.fu[j])
+		ii.prefetchRef(grp.fi[j])
+	}
+	for j := range n {
+		ui.prefetchBytes(grp.fu[j])
+		ii.prefetchBytes(grp.fi[j])
+	}
 }
 
 // stepGroup steps the resolved events of group buffer g.

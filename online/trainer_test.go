@@ -508,3 +508,38 @@ func TestTrainerMatchesSequentialLoop(t *testing.T) {
 		}
 	}
 }
+
+// BenchmarkTrainer measures the trainer's whole per-event path (ID
+// resolution with staged prefetching, scoring, the step, the monitor, log
+// cuts to an in-memory checkpointer) on the demo scenario: 1M ratings over
+// 50k listeners and 5k shows, k = 32. The scenario is generated in the
+// trainer's goroutine, so its cost (about a third) is included.
+func BenchmarkTrainer(b *testing.B) {
+	events := int64(1_000_000)
+	if testing.Short() {
+		events = 100_000
+	}
+	for range b.N {
+		sc, err := stream.NewScenario(stream.ScenarioOptions{Seed: 1, Events: events, Listeners: 50000, Shows: 5000,
+			ArrivalsUntil: events / 10}, stream.Position{})
+		if err != nil {
+			b.Fatal(err)
+		}
+		m, err := online.New(online.Options{Rank: 32, Seed: 1})
+		if err != nil {
+			b.Fatal(err)
+		}
+		mon, err := online.NewMonitor(online.MonitorOptions{})
+		if err != nil {
+			b.Fatal(err)
+		}
+		tr, err := online.NewTrainer(online.TrainerOptions{Model: m, Monitor: mon, Source: sc, Checkpoint: &recorder{}, Progress: -1})
+		if err != nil {
+			b.Fatal(err)
+		}
+		if err := tr.Run(context.Background()); err != nil {
+			b.Fatal(err)
+		}
+	}
+	b.ReportMetric(float64(events)*float64(b.N)/b.Elapsed().Seconds(), "events/s")
+}
