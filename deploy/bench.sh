@@ -35,6 +35,10 @@ run "$f" env GOEXPERIMENT=simd go test -run '^$' -bench 'BenchmarkStep$' -count=
 run "$f" go test -run '^$' -bench 'BenchmarkStep$' -count=3 ./online/
 run "$f" env GOEXPERIMENT=simd go test -run '^$' -bench 'BenchmarkKernels|BenchmarkStepImplicit|BenchmarkScoresTo' -count=3 ./online/
 
+f=$out/online-trainer.txt
+machine >"$f"
+run "$f" env GOEXPERIMENT=simd go test -run '^$' -bench 'BenchmarkTrainer$' -benchtime=1x -count=5 ./online/
+
 f=$out/online-index.txt
 machine >"$f"
 run "$f" go test -run '^$' -bench 'BenchmarkIndex' -count=3 ./online/
