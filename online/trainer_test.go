@@ -43,6 +43,32 @@ func (a *ackCheck) Commit(ctx context.Context, p stream.Position) error {
 	return a.Source.Commit(ctx, p)
 }
 
+// requireSameRows fails the test unless both models hold the same rows
+// with the same IDs, biases, counts, times and factors, bit for bit.
+func requireSameRows(t *testing.T, m1, m2 *online.Model) {
+	t.Helper()
+	for _, side := range []online.Side{online.Users, online.Items} {
+		var a, b online.RowSet
+		m1.CopyRows(side, 0, m1.Rows(side), &a)
+		m2.CopyRows(side, 0, m2.Rows(side), &b)
+		if a.Len() != b.Len() {
+			t.Fatalf("%v rows: %d and %d", side, a.Len(), b.Len())
+		}
+		for i := range a.Recs {
+			x, y := a.Recs[i], b.Recs[i]
+			if x.Row != y.Row || !bytes.Equal(x.ID, y.ID) || math.Float32bits(x.Bias) != math.Float32bits(y.Bias) ||
+				x.Count != y.Count || x.Last != y.Last {
+				t.Fatalf("%v row %d differs: %+v and %+v", side, x.Row, x, y)
+			}
+			for j := range x.Vec {
+				if math.Float32bits(x.Vec[j]) != math.Float32bits(y.Vec[j]) {
+					t.Fatalf("%v row %d factor %d: %v and %v", side, x.Row, j, x.Vec[j], y.Vec[j])
+				}
+			}
+		}
+	}
+}
+
 // holdEOF turns the wrapped source's io.EOF into empty batches until release
 // is set.
 type holdEOF struct {
@@ -191,26 +217,7 @@ func TestTrainerRecoversExactly(t *testing.T) {
 	if meta.Position.Offset != events || meta.Counts.Applied != events {
 		t.Fatalf("recovered position %v, applied %d; want %d", meta.Position, meta.Counts.Applied, events)
 	}
-	for _, side := range []online.Side{online.Users, online.Items} {
-		var a, b online.RowSet
-		m.CopyRows(side, 0, m.Rows(side), &a)
-		m2.CopyRows(side, 0, m2.Rows(side), &b)
-		if a.Len() != b.Len() {
-			t.Fatalf("%v rows: live %d, recovered %d", side, a.Len(), b.Len())
-		}
-		for i := range a.Recs {
-			x, y := a.Recs[i], b.Recs[i]
-			if x.Row != y.Row || !bytes.Equal(x.ID, y.ID) || math.Float32bits(x.Bias) != math.Float32bits(y.Bias) ||
-				x.Count != y.Count || x.Last != y.Last {
-				t.Fatalf("%v row %d differs: live %+v recovered %+v", side, x.Row, x, y)
-			}
-			for j := range x.Vec {
-				if math.Float32bits(x.Vec[j]) != math.Float32bits(y.Vec[j]) {
-					t.Fatalf("%v row %d factor %d: live %v recovered %v", side, x.Row, j, x.Vec[j], y.Vec[j])
-				}
-			}
-		}
-	}
+	requireSameRows(t, m, m2)
 	if m.Mean() != m2.Mean() {
 		t.Errorf("mean: live %v, recovered %v", m.Mean(), m2.Mean())
 	}
@@ -488,25 +495,7 @@ func TestTrainerMatchesSequentialLoop(t *testing.T) {
 	if erased == 0 || tr.Counts().Erased != uint64(erased) {
 		t.Fatalf("erasures: trainer %d, loop %d", tr.Counts().Erased, erased)
 	}
-	for _, side := range []online.Side{online.Users, online.Items} {
-		var a, b online.RowSet
-		m1.CopyRows(side, 0, m1.Rows(side), &a)
-		m2.CopyRows(side, 0, m2.Rows(side), &b)
-		if a.Len() != b.Len() {
-			t.Fatalf("%v: trainer has %d rows, loop %d", side, a.Len(), b.Len())
-		}
-		for r := range a.Recs {
-			x, y := a.Recs[r], b.Recs[r]
-			if x.Row != y.Row || !bytes.Equal(x.ID, y.ID) || math.Float32bits(x.Bias) != math.Float32bits(y.Bias) || x.Count != y.Count {
-				t.Fatalf("%v row %d: trainer %+v, loop %+v", side, x.Row, x, y)
-			}
-			for j := range x.Vec {
-				if math.Float32bits(x.Vec[j]) != math.Float32bits(y.Vec[j]) {
-					t.Fatalf("%v row %d factor %d: trainer %v, loop %v", side, x.Row, j, x.Vec[j], y.Vec[j])
-				}
-			}
-		}
-	}
+	requireSameRows(t, m1, m2)
 }
 
 // BenchmarkTrainer measures the trainer's whole per-event path (ID
