@@ -144,6 +144,10 @@ type Counts struct {
 	NonFinite uint64 `json:"non_finite"` // steps undone by the numerical guard
 	Erased    uint64 `json:"erased"`     // erasure events applied
 	Refused   uint64 `json:"refused"`    // events for erased IDs or over the row caps
+	// Reapplied counts events applied a second time after crashes: applied
+	// before a crash but after the last durable cut, so delivered and
+	// applied again on restart (at-least-once). Applied counts them once.
+	Reapplied uint64 `json:"reapplied"`
 }
 
 // ModelMeta is the non-row state of a Model needed to resume it exactly.

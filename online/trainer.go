@@ -43,7 +43,11 @@ type TrainerOptions struct {
 	Publisher Publisher
 	// Resume is the meta of the restored checkpoint; nil for a new model.
 	Resume *Meta
-	Logger *zap.Logger // nil: no logging
+	// Reapply is the number of events the previous process applied beyond
+	// Resume (from the checkpoint's mark): they are delivered again and
+	// counted in Counts.Reapplied.
+	Reapply uint64
+	Logger  *zap.Logger // nil: no logging
 
 	// FlushInterval is the longest time between durable cuts; default 1s.
 	FlushInterval time.Duration
@@ -102,6 +106,15 @@ type Alarm struct {
 	Event  uint64 // index of the event (Counts.Applied after it)
 	Time   int64  // model time (ms)
 	Status MonitorStatus
+}
+
+// A Marker is a Checkpointer that can cheaply record, without making it
+// durable, how many events have been applied so far; after a process crash
+// the next recovery compares it with the recovered cut to count the events
+// applied again (TrainerOptions.Reapply). The trainer marks at every batch
+// boundary.
+type Marker interface {
+	Mark(applied uint64) error
 }
 
 // A Purger is a Checkpointer that can delete every checkpoint file older
@@ -354,6 +367,7 @@ func NewTrainer(o TrainerOptions) (*Trainer, error) {
 		t.lastFlushSeq = r.Seq
 		t.purge = r.Purge // an erasure's purge did not complete before the stop
 	}
+	t.counts.Reapplied += o.Reapply
 	t.startApplied = t.counts.Applied
 	t.m.Track(ConsumerLog, true)
 	t.m.Track(ConsumerPublish, o.Publisher != nil)
@@ -373,6 +387,7 @@ func (t *Trainer) Run(ctx context.Context) error {
 	if t.o.Resume != nil {
 		t.log.Info("resumed", zap.Stringer("position", t.o.Resume.Position),
 			zap.Uint64("events", t.counts.Applied), zap.Uint64("seq", t.seq),
+			zap.Uint64("reapply", t.o.Reapply), zap.Uint64("reapplied", t.counts.Reapplied),
 			zap.Int("users", t.m.Live(Users)), zap.Int("items", t.m.Live(Items)))
 	}
 
@@ -663,6 +678,11 @@ func (t *Trainer) afterBatch(ctx context.Context) error {
 	}
 	if err := t.ack(ctx); err != nil {
 		return err
+	}
+	if mk, ok := t.o.Checkpoint.(Marker); ok {
+		// Not durable, and not an error worth stopping for: it only
+		// counts re-applied events after a crash.
+		_ = mk.Mark(t.counts.Applied)
 	}
 	now := t.o.now()
 	if el := now.Sub(t.lastRefill); el > 0 {
@@ -1014,6 +1034,7 @@ func (t *Trainer) progress(now time.Time, msg string) {
 		zap.Uint64("rejected", t.counts.Rejected),
 		zap.Uint64("refused", t.counts.Refused),
 		zap.Uint64("non_finite", t.counts.NonFinite),
+		zap.Uint64("reapplied", t.counts.Reapplied),
 		zap.Uint64("seq", t.seq),
 		zap.Duration("stall_max", t.stallMax),
 		zap.Stringer("position", t.pos),

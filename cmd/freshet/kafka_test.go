@@ -723,6 +723,15 @@ func TestKafkaKillResume(t *testing.T) {
 	if reapplied > bound {
 		t.Errorf("re-applied %d events, more than one flush interval plus a batch (%d)", reapplied, bound)
 	}
+	if first.msg() == "resumed" {
+		// The exact count, from the checkpoint's mark (written at every
+		// batch boundary before the progress line, so at least the logs').
+		exact := int64(first.uint(t, "reapply"))
+		t.Logf("the mark says %d events re-applied", exact)
+		if exact < reapplied || exact > bound {
+			t.Errorf("%d events re-applied by the mark; want at least %d (the logs) and at most %d", exact, reapplied, bound)
+		}
+	}
 	if first.msg() != "resumed" {
 		t.Errorf("the restart found nothing durable after %d events (first cut due after %s); first line %s", last, kafkaFlush, first.Raw)
 	}

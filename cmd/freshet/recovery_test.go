@@ -84,7 +84,7 @@ func killRecovery(t *testing.T, env map[string]string, n uint64, compare []strin
 	dir := t.TempDir()
 	rng := rand.New(rand.NewPCG(20261202, 9))
 	var prev *killed // the last run killed, for the next restart to check
-	var resumedAt uint64
+	var resumedAt, reappliedSum uint64
 	kills, fromSnapshot := 0, 0
 	// check verifies the restart after a kill: it resumes at a durable cut
 	// (position = event count) no further back than the bound allows.
@@ -123,6 +123,17 @@ func killRecovery(t *testing.T, env map[string]string, n uint64, compare []strin
 		if reapplied > bound {
 			t.Errorf("kill %d: the killed run had applied at least %d events beyond its last durable cut (at %d); bound %d",
 				kills, reapplied, r, bound)
+		}
+		if resumed.Fields != nil {
+			// The exact count, from the checkpoint's mark: the killed run
+			// marked its applied total at every batch boundary, before
+			// logging, so it is at least what the logs show.
+			exact := int64(resumed.uint(t, "reapply"))
+			reappliedSum += uint64(exact)
+			t.Logf("kill %d: the mark says %d events re-applied", kills, exact)
+			if exact < reapplied || exact > bound {
+				t.Errorf("kill %d: %d events re-applied by the mark; want at least %d (the logs) and at most %d", kills, exact, reapplied, bound)
+			}
 		}
 		resumedAt = r
 	}
@@ -246,7 +257,15 @@ func killRecovery(t *testing.T, env map[string]string, n uint64, compare []strin
 	}
 
 	got, want := recoverDir(t, dir, env), recoverDir(t, refDir, env)
-	if got.meta.Counts != want.meta.Counts || got.meta.Counts.Applied != n {
+	// Reapplied is the one count that differs: it tallies, across the
+	// restarts, the events each kill left to be applied again.
+	gotCounts := got.meta.Counts
+	if gotCounts.Reapplied != reappliedSum || want.meta.Counts.Reapplied != 0 {
+		t.Errorf("reapplied %d after the kills (the restarts' marks add up to %d), %d uninterrupted (want 0)",
+			gotCounts.Reapplied, reappliedSum, want.meta.Counts.Reapplied)
+	}
+	gotCounts.Reapplied = 0
+	if gotCounts != want.meta.Counts || got.meta.Counts.Applied != n {
 		t.Fatalf("counts %+v after the kills, %+v uninterrupted (want %d applied)", got.meta.Counts, want.meta.Counts, n)
 	}
 	if got.meta.Position.String() != want.meta.Position.String() || got.meta.Time != want.meta.Time {

@@ -204,7 +204,7 @@ func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *da
 	if err != nil {
 		return nil, fmt.Errorf("open data directory: %w", err)
 	}
-	resume, err := recoverState(d.store, d.model, d.monitor, log)
+	resume, reapply, err := recoverState(d.store, d.model, d.monitor, log)
 	if err != nil {
 		return nil, err
 	}
@@ -241,7 +241,7 @@ func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *da
 	}
 	to := trainerOptions(cfg)
 	to.Model, to.Monitor, to.Source, to.Checkpoint = d.model, d.monitor, d.source, d.store
-	to.Resume, to.Logger = resume, log.Named("trainer")
+	to.Resume, to.Reapply, to.Logger = resume, reapply, log.Named("trainer")
 	rejects := d.rejects
 	to.OnErase = func(_ online.Side, id []byte) error {
 		_, err := rejects.RemoveID(id)
@@ -268,8 +268,9 @@ func openDaemon(ctx context.Context, cfg *config.Config, log *zap.Logger) (_ *da
 }
 
 // recoverState loads the newest durable cut into model and monitor and
-// returns its meta (nil for a new model).
-func recoverState(store *checkpoint.Store, m *online.Model, mon *online.Monitor, log *zap.Logger) (*online.Meta, error) {
+// returns its meta (nil for a new model) and the number of events the
+// previous process applied beyond it, which will be applied again.
+func recoverState(store *checkpoint.Store, m *online.Model, mon *online.Monitor, log *zap.Logger) (*online.Meta, uint64, error) {
 	// The rows come before the meta that names the rank: a row of another
 	// rank is the same configuration mistake as the rank check below, not
 	// a damaged file.
@@ -284,10 +285,10 @@ func recoverState(store *checkpoint.Store, m *online.Model, mon *online.Monitor,
 	meta, info, err := store.Recover(apply)
 	if err != nil {
 		if heldRank != 0 {
-			return nil, usagef("data directory holds a model of rank %d; the configuration asks for rank %d (use another data directory)",
+			return nil, 0, usagef("data directory holds a model of rank %d; the configuration asks for rank %d (use another data directory)",
 				heldRank, m.Rank())
 		}
-		return nil, fmt.Errorf("recover checkpoint: %w", err)
+		return nil, 0, fmt.Errorf("recover checkpoint: %w", err)
 	}
 	if info.TornBytes > 0 {
 		log.Warn("dropped torn log tail", zap.String("file", info.TornFile),
@@ -296,24 +297,29 @@ func recoverState(store *checkpoint.Store, m *online.Model, mon *online.Monitor,
 	for _, sa := range info.SetAside {
 		log.Warn("snapshot failed its checksum; set aside", zap.Any("snapshot", sa))
 	}
+	if info.Reapply > 0 {
+		log.Warn("the previous process stopped without a final cut; events after the recovered position are applied again",
+			zap.Uint64("reapply", info.Reapply))
+	}
 	if meta == nil {
-		return nil, nil
+		return nil, info.Reapply, nil
 	}
 	if meta.Rank != m.Rank() || meta.Mode != m.Options().Mode.String() {
-		return nil, usagef("data directory holds an %s model of rank %d; the configuration asks for %s rank %d (use another data directory)",
+		return nil, 0, usagef("data directory holds an %s model of rank %d; the configuration asks for %s rank %d (use another data directory)",
 			meta.Mode, meta.Rank, m.Options().Mode, m.Rank())
 	}
 	if err := m.Restore(meta.Model); err != nil {
-		return nil, fmt.Errorf("restore model: %w", err)
+		return nil, 0, fmt.Errorf("restore model: %w", err)
 	}
 	if len(meta.Monitor) > 0 {
 		if err := mon.UnmarshalState(meta.Monitor); err != nil {
-			return nil, fmt.Errorf("restore monitor: %w", err)
+			return nil, 0, fmt.Errorf("restore monitor: %w", err)
 		}
 	}
 	log.Info("recovered", zap.String("snapshot", info.Snapshot), zap.Int("snapshot_rows", info.SnapshotRows),
-		zap.Strings("logs", info.Logs), zap.Int("records", info.Records), zap.Int("log_rows", info.LogRows))
-	return meta, nil
+		zap.Strings("logs", info.Logs), zap.Int("records", info.Records), zap.Int("log_rows", info.LogRows),
+		zap.Uint64("reapply", info.Reapply))
+	return meta, info.Reapply, nil
 }
 
 // newModel turns the model and monitor sections into their options.

@@ -156,6 +156,8 @@ type Store struct {
 	logEnd  int64
 	// logSize mirrors logEnd for LogBytes, which other goroutines call.
 	logSize atomic.Int64
+	// markF is the MARK file, opened by the first Mark.
+	markF   atomic.Pointer[os.File]
 	lastSeq uint64 // meta.Seq of the last Append
 	rec     []byte // reused record buffer
 	block   []byte // reused snapshot block buffer
@@ -225,7 +227,7 @@ func (s *Store) Close() error {
 		errs = append(errs, s.logF.Close())
 		s.logF = nil
 	}
-	errs = append(errs, s.unlock())
+	errs = append(errs, s.closeMark(), s.unlock())
 	return errors.Join(errs...)
 }
 

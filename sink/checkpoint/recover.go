@@ -14,6 +14,13 @@ import (
 
 // RecoverInfo says what Recover read and what it dropped or set aside.
 type RecoverInfo struct {
+	// Reapply is how many events the process before this one had applied
+	// beyond the recovered cut (from its last Mark): the events a restart
+	// applies again. Zero after a clean stop; a lower bound (by at most the
+	// batch in hand) after a process crash, and unknown (zero) after a
+	// machine crash, which loses the unsynced mark.
+	Reapply uint64
+
 	// Snapshot is the file name of the snapshot loaded ("" when recovery
 	// started from an empty model and log-1).
 	Snapshot string
@@ -127,6 +134,9 @@ func (s *Store) Recover(apply func(rec *online.RowRecord) error) (meta *online.M
 	}
 	if len(l.snaps) == 0 && len(l.logs) == 0 {
 		s.needRecover, s.recovered = false, true
+		if m, ok := s.readMark(); ok {
+			info.Reapply = m // events applied before any cut was durable
+		}
 		return nil, info, nil
 	}
 	r := &recovery{s: s, apply: apply}
@@ -213,6 +223,9 @@ func (s *Store) Recover(apply func(rec *online.RowRecord) error) (meta *online.M
 	}
 	if err := s.resumeLog(maxLog, last, r.rank); err != nil {
 		return nil, info, err
+	}
+	if m, ok := s.readMark(); ok && meta != nil && m > meta.Counts.Applied {
+		info.Reapply = m - meta.Counts.Applied
 	}
 	s.needRecover, s.recovered = false, true
 	return meta, info, nil
