@@ -63,17 +63,23 @@ func (x *index) id(r int32) []byte {
 
 // find returns the row of id. It does not allocate.
 func (x *index) find(id []byte) (int32, bool) {
+	_, r, ok := x.lookup(id)
+	return r, ok
+}
+
+// lookup returns the slot holding id and its row. It does not allocate.
+func (x *index) lookup(id []byte) (slot uint64, row int32, ok bool) {
 	f := x.fp(id)
 	mask := uint64(len(x.slots) - 1)
 	for j := uint64(f) & mask; ; j = (j + 1) & mask {
 		s := x.slots[j]
 		if s == 0 {
-			return -1, false
+			return 0, -1, false
 		}
 		if uint32(s>>32) == f {
 			r := int32(uint32(s) - 1)
 			if bytes.Equal(x.id(r), id) {
-				return r, true
+				return j, r, true
 			}
 		}
 	}
@@ -133,26 +139,15 @@ func (x *index) resize(n int) {
 // zeros (an erased ID must not linger in memory); the arena space is not
 // reused.
 func (x *index) remove(id []byte) (int32, bool) {
-	f := x.fp(id)
-	mask := uint64(len(x.slots) - 1)
-	j := uint64(f) & mask
-	for {
-		s := x.slots[j]
-		if s == 0 {
-			return -1, false
-		}
-		if uint32(s>>32) == f {
-			r := int32(uint32(s) - 1)
-			if bytes.Equal(x.id(r), id) {
-				clear(x.id(r))
-				x.refs[r] = 0
-				x.deleteSlot(j)
-				x.n--
-				return r, true
-			}
-		}
-		j = (j + 1) & mask
+	j, r, ok := x.lookup(id)
+	if !ok {
+		return -1, false
 	}
+	clear(x.id(r))
+	x.refs[r] = 0
+	x.deleteSlot(j)
+	x.n--
+	return r, true
 }
 
 // deleteSlot empties slot j and shifts later entries of the probe run back

@@ -6,7 +6,6 @@ import (
 	"errors"
 	"fmt"
 	"math"
-	"net"
 	"os"
 	"path/filepath"
 	"regexp"
@@ -20,6 +19,7 @@ import (
 	kgo "github.com/segmentio/kafka-go"
 
 	"freshet.dev/freshet/config"
+	"freshet.dev/freshet/internal/testserver"
 	"freshet.dev/freshet/online"
 	"freshet.dev/freshet/stream"
 	"freshet.dev/freshet/stream/kafka"
@@ -45,19 +45,7 @@ const (
 
 // testBroker returns the broker address in the variable env, skipping the
 // test when it is unset and failing it when nothing answers there.
-func testBroker(tb testing.TB, env string) string {
-	tb.Helper()
-	addr := os.Getenv(env)
-	if addr == "" {
-		tb.Skipf("%s is unset: start the test broker with deploy/kafka.sh start and export $(deploy/kafka.sh env)", env)
-	}
-	c, err := net.DialTimeout("tcp", addr, 5*time.Second)
-	if err != nil {
-		tb.Fatalf("%s=%s is set but the broker does not answer: %v", env, addr, err)
-	}
-	c.Close()
-	return addr
-}
+func testBroker(tb testing.TB, env string) string { return testserver.Kafka(tb, env) }
 
 var kafkaSeq atomic.Int64
 

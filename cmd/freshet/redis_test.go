@@ -18,6 +18,7 @@ import (
 
 	"github.com/redis/go-redis/v9"
 
+	"freshet.dev/freshet/internal/testserver"
 	"freshet.dev/freshet/online"
 	"freshet.dev/freshet/sink/serving/reader"
 	"freshet.dev/freshet/stream"
@@ -28,19 +29,7 @@ import (
 // is unset and fail when it is set but unreachable. Each test writes under its
 // own key prefix and removes its keys afterwards.
 
-func testRedis(t *testing.T) string {
-	t.Helper()
-	addr := os.Getenv("FRESHET_TEST_REDIS")
-	if addr == "" {
-		t.Skip("FRESHET_TEST_REDIS not set (bash deploy/redis.sh start; export $(bash deploy/redis.sh env))")
-	}
-	c := redis.NewClient(&redis.Options{Addr: addr, DialTimeout: 2 * time.Second})
-	defer c.Close()
-	if err := c.Ping(context.Background()).Err(); err != nil {
-		t.Fatalf("FRESHET_TEST_REDIS=%s is set but unreachable: %v", addr, err)
-	}
-	return addr
-}
+func testRedis(t *testing.T) string { return testserver.Redis(t) }
 
 // redisPrefix returns a key prefix unique to the test and unlinks its keys at
 // the end.

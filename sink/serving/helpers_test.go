@@ -17,6 +17,7 @@ import (
 
 	"github.com/redis/go-redis/v9"
 
+	"freshet.dev/freshet/internal/testserver"
 	"freshet.dev/freshet/online"
 	"freshet.dev/freshet/sink/serving/reader"
 	"freshet.dev/freshet/stream"
@@ -24,19 +25,7 @@ import (
 
 // sharedRedis returns the address in FRESHET_TEST_REDIS (see deploy/redis.sh).
 // The test is skipped when it is unset and fails when the server is unreachable.
-func sharedRedis(t testing.TB) string {
-	t.Helper()
-	addr := os.Getenv("FRESHET_TEST_REDIS")
-	if addr == "" {
-		t.Skip("FRESHET_TEST_REDIS not set (deploy/redis.sh start; eval $(deploy/redis.sh env))")
-	}
-	c := redis.NewClient(&redis.Options{Addr: addr, DialTimeout: 2 * time.Second})
-	defer c.Close()
-	if err := c.Ping(context.Background()).Err(); err != nil {
-		t.Fatalf("FRESHET_TEST_REDIS=%s is set but unreachable: %v", addr, err)
-	}
-	return addr
-}
+func sharedRedis(t testing.TB) string { return testserver.Redis(t) }
 
 // testPrefix returns a prefix unique to the test and removes its keys after.
 func testPrefix(t testing.TB, addr string) string {

@@ -3,8 +3,6 @@ package kafka
 import (
 	"context"
 	"fmt"
-	"net"
-	"os"
 	"regexp"
 	"sync/atomic"
 	"testing"
@@ -14,6 +12,7 @@ import (
 	"go.uber.org/zap"
 	"go.uber.org/zap/zaptest"
 
+	"freshet.dev/freshet/internal/testserver"
 	"freshet.dev/freshet/stream"
 )
 
@@ -28,19 +27,7 @@ const (
 	envSASLPass = "FRESHET_TEST_KAFKA_SASL_PASSWORD"
 )
 
-func brokerFrom(tb testing.TB, env string) string {
-	tb.Helper()
-	addr := os.Getenv(env)
-	if addr == "" {
-		tb.Skipf("%s is unset: start the test broker with deploy/kafka.sh start and export $(deploy/kafka.sh env)", env)
-	}
-	c, err := net.DialTimeout("tcp", addr, 5*time.Second)
-	if err != nil {
-		tb.Fatalf("%s=%s is set but the broker does not answer: %v", env, addr, err)
-	}
-	c.Close()
-	return addr
-}
+func brokerFrom(tb testing.TB, env string) string { return testserver.Kafka(tb, env) }
 
 var nameSeq atomic.Int64
 
